@@ -1,0 +1,231 @@
+"""What each command-line verb does, as plain functions (the CLI only parses and prints).
+
+Loading and checking happen before anything is written or moved: a bad file stops the command
+with one line and exit code 2, and no run folder is created.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import sys
+import time
+from contextlib import ExitStack
+from importlib import resources
+from pathlib import Path
+
+from bench import __version__
+from bench.errors import BenchError, ConfigError, PlanError
+
+__all__ = ["dispatch", "RunInterruptedExit", "demo_bench_path", "prepare", "Prepared"]
+
+log = logging.getLogger("bench.app")
+
+
+class RunInterruptedExit(BenchError):
+    """The run stopped early; the message says how to resume."""
+
+    exit_code = 3
+
+
+def demo_bench_path() -> Path:
+    """The demo bench file shipped with the package (used by ``--sim`` without ``--bench``)."""
+    return Path(str(resources.files("bench.demo") / "demo-bench.toml"))
+
+
+def _sha256(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+class Prepared:
+    """A loaded sequence and bench, a plan, and (with ``--sim``) the running simulated bench."""
+
+    def __init__(self, sequence, sequence_path: Path, bench, bench_path: Path, plan, sim=None) -> None:
+        self.sequence = sequence
+        self.sequence_path = sequence_path
+        self.bench = bench
+        self.bench_path = bench_path
+        self.plan = plan
+        self.sim = sim
+
+
+def prepare(sequence_path: Path, *, bench_path: Path | None, sim: bool, board: Path | None = None,
+            seed: int = 1, realtime: bool = False, faults: list[str] | None = None,
+            stack: ExitStack | None = None) -> Prepared:
+    """Load and validate everything, start the simulator if asked, and plan. Writes nothing."""
+    from bench.benchfile import load_bench
+    from bench.planner import build_plan
+    from bench.sequence import load_sequence
+
+    sequence = load_sequence(sequence_path)
+    if bench_path is None:
+        if not sim:
+            raise ConfigError("no bench file: give --bench FILE for a real bench, or --sim for the simulated one")
+        bench_path = demo_bench_path()
+    bench = load_bench(bench_path)
+    simulator = None
+    if sim:
+        from bench.simbench import start_simulated_bench
+
+        simulator, bench = start_simulated_bench(bench, board=board, seed=seed, realtime=realtime,
+                                                 faults=faults or [])
+        if stack is not None:
+            stack.callback(simulator.stop)
+    plan = build_plan(sequence, bench)
+    return Prepared(sequence, Path(sequence_path), bench, Path(bench_path), plan, simulator)
+
+
+# --------------------------------------------------------------------------------- verbs
+
+def dispatch(args) -> int:
+    verbs = {
+        "run": cmd_run, "check": cmd_check, "resume": cmd_resume, "sim": cmd_sim,
+        "export": cmd_export, "report": cmd_report, "compare": cmd_compare,
+        "instruments": cmd_instruments, "info": cmd_info,
+    }
+    return verbs[args.verb](args)
+
+
+def _print_plan(prep: Prepared) -> None:
+    for line in prep.plan.summary_lines():
+        print(line)
+    for w in tuple(prep.sequence.warnings) + tuple(prep.bench.warnings):
+        print(f"warning: {w}")
+
+
+def cmd_check(args) -> int:
+    with ExitStack() as stack:
+        prep = prepare(args.sequence, bench_path=args.bench, sim=args.sim, board=args.board,
+                       seed=args.seed, realtime=args.realtime, stack=stack)
+        _print_plan(prep)
+        print("check: OK (no instrument was touched)")
+    return 0
+
+
+def cmd_run(args) -> int:
+    from bench.cli import SAFETY_LINE
+    from bench.runner import execute_new_run
+
+    with ExitStack() as stack:
+        prep = prepare(args.sequence, bench_path=args.bench, sim=args.sim, board=args.board,
+                       seed=args.seed, realtime=args.realtime, faults=args.fault, stack=stack)
+        print(SAFETY_LINE, file=sys.stderr)
+        _print_plan(prep)
+        folder = execute_new_run(prep, out_root=args.out, plots=not args.no_plots)
+    print(f"run stored in {folder}")
+    return 0
+
+
+def cmd_resume(args) -> int:
+    from bench.runner import resume_run
+
+    with ExitStack() as stack:
+        folder = resume_run(args.run, bench_path=args.bench, sim=args.sim, board=args.board,
+                            seed=args.seed, realtime=args.realtime, plots=not args.no_plots, stack=stack)
+    print(f"run completed in {folder}")
+    return 0
+
+
+def cmd_sim(args) -> int:
+    from bench.simbench import serve_forever
+
+    return serve_forever(port=args.port, board=args.board, seed=args.seed, realtime=args.realtime)
+
+
+def cmd_export(args) -> int:
+    from bench.store import open_run
+
+    run = open_run(args.run)
+    files = run.export_csv(args.csv)
+    if args.parquet:
+        try:
+            import pyarrow  # noqa: F401
+        except ImportError as exc:
+            raise ConfigError("--parquet needs pyarrow: pip install 'emission-bench[parquet]'") from exc
+        meta = run.traces()
+        path = Path(args.csv) / "traces.parquet"
+        meta.to_parquet(path, index=False)
+        files.append(path)
+    for f in files:
+        print(f)
+    return 0
+
+
+def cmd_report(args) -> int:
+    from bench.report import write_report
+    from bench.store import open_run
+
+    path = write_report(open_run(args.run))
+    print(path)
+    return 0
+
+
+def cmd_compare(args) -> int:
+    from bench.compare import compare_runs
+
+    path = compare_runs(args.before, args.after, out=args.out)
+    print(path)
+    return 0
+
+
+def cmd_instruments(args) -> int:
+    from bench.benchfile import load_bench
+    from bench.station import identify_all
+
+    with ExitStack() as stack:
+        if args.sim:
+            from bench.simbench import start_simulated_bench
+
+            bench = load_bench(args.bench or demo_bench_path())
+            sim, bench = start_simulated_bench(bench, board=args.board, seed=args.seed, realtime=args.realtime)
+            stack.callback(sim.stop)
+        elif args.bench:
+            bench = load_bench(args.bench)
+        else:
+            raise ConfigError("instruments: give --bench FILE or --sim")
+        failures = 0
+        for role, address, reply in identify_all(bench):
+            print(f"{role:10s} {address}  {reply}")
+            failures += reply.startswith("ERROR")
+    return 1 if failures else 0
+
+
+def cmd_info(args) -> int:
+    import importlib.metadata as md
+
+    from bench.drivers.profile import builtin_profiles
+
+    print(f"emission-bench {__version__}, Python {sys.version.split()[0]}")
+    for dist in ("numpy", "scipy", "pandas", "matplotlib", "pydantic", "pyvisa", "pyvisa-py", "pyserial",
+                 "rich", "tomli-w", "pyarrow"):
+        try:
+            print(f"  {dist:12s} {md.version(dist)}")
+        except md.PackageNotFoundError:
+            print(f"  {dist:12s} unavailable" + ("  (optional: Parquet export)" if dist == "pyarrow" else ""))
+    print("instrument profiles:")
+    for name, desc in builtin_profiles().items():
+        print(f"  {name:20s} {desc}")
+    try:
+        from bench.analysis.limits import list_limits
+
+        print("limit lines:")
+        for name in list_limits():
+            print(f"  {name}")
+    except BenchError as exc:  # pragma: no cover - a broken built-in file
+        print(f"limit lines: unavailable ({exc})")
+    print("transports:")
+    try:
+        import pyvisa
+
+        rm = pyvisa.ResourceManager("@py")
+        print(f"  VISA (pyvisa-py): available, backend {rm.visalib}")
+        rm.close()
+    except Exception as exc:  # noqa: BLE001 - info must report, not crash
+        print(f"  VISA (pyvisa-py): unavailable ({exc})")
+    try:
+        import serial
+
+        print(f"  serial (pyserial {serial.VERSION}): available (device paths, socket://, loop://)")
+    except ImportError as exc:
+        print(f"  serial: unavailable ({exc})")
+    return 0

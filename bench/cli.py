@@ -1,0 +1,122 @@
+"""Command line: ``bench <verb> ...`` (also ``python -m bench``).
+
+Verbs: ``run``, ``check``, ``resume``, ``sim``, ``export``, ``report``, ``compare``,
+``instruments``, ``info``. A mistake in a file a person wrote is one line on stderr and exit code
+2, with nothing written; an instrument or transport failure is one line and exit code 1; an
+interrupted run says how to resume it (exit code 3).
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+
+from bench.errors import BenchError
+
+__all__ = ["main", "build_parser"]
+
+SAFETY_LINE = ("Safety: analyzer inputs are damaged by more than about +30 dBm or any DC (use an "
+               "attenuator, DC block, limiter); boards may carry mains or high voltage; a moving "
+               "stage can pinch and crash a probe. A pre-scan is an estimate, not a compliance verdict.")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="bench", description="Radiated-emission pre-scans on a bench or a simulated bench.")
+    p.add_argument("-v", "--verbose", action="store_true", help="more detail (all validation errors, debug log)")
+    sub = p.add_subparsers(dest="verb", required=True, metavar="VERB")
+
+    def bench_args(sp):
+        g = sp.add_mutually_exclusive_group()
+        g.add_argument("--bench", type=Path, help="bench file (instruments, addresses, tables, site)")
+        g.add_argument("--sim", action="store_true", help="use the built-in simulated bench over loopback")
+        sp.add_argument("--board", type=Path, help="with --sim: simulated board file (default: the demo board)")
+        sp.add_argument("--seed", type=int, default=1, help="with --sim: random seed (default 1)")
+        sp.add_argument("--realtime", action="store_true", help="with --sim: sweeps and moves take their physical time")
+
+    sp = sub.add_parser("run", help="check a sequence, then run it and store the results")
+    sp.add_argument("sequence", type=Path)
+    bench_args(sp)
+    sp.add_argument("--out", type=Path, default=Path("runs"), help="folder for run folders (default ./runs)")
+    sp.add_argument("--no-plots", action="store_true", help="skip PNG plots and the report")
+    sp.add_argument("--fault", action="append", default=[], metavar="KIND=N",
+                    help="with --sim: inject a fault, e.g. drop-after-sweeps=20 (repeatable)")
+
+    sp = sub.add_parser("check", help="validate a sequence and print its plan; touches no instrument")
+    sp.add_argument("sequence", type=Path)
+    bench_args(sp)
+
+    sp = sub.add_parser("resume", help="continue an interrupted run from the first action not done")
+    sp.add_argument("run", type=Path)
+    bench_args(sp)
+    sp.add_argument("--no-plots", action="store_true")
+
+    sp = sub.add_parser("sim", help="serve the simulated bench on loopback and print its addresses")
+    sp.add_argument("--port", type=int, default=0, help="analyzer SCPI port (default: an ephemeral one)")
+    sp.add_argument("--board", type=Path)
+    sp.add_argument("--seed", type=int, default=1)
+    sp.add_argument("--realtime", action="store_true")
+
+    sp = sub.add_parser("export", help="export a run to CSV (and Parquet)")
+    sp.add_argument("run", type=Path)
+    sp.add_argument("--csv", type=Path, required=True, metavar="DIR")
+    sp.add_argument("--parquet", action="store_true", help="also write traces.parquet (needs pyarrow)")
+
+    sp = sub.add_parser("report", help="write the HTML report and plots of a run")
+    sp.add_argument("run", type=Path)
+
+    sp = sub.add_parser("compare", help="compare two runs (before and after a fix)")
+    sp.add_argument("before", type=Path)
+    sp.add_argument("after", type=Path)
+    sp.add_argument("--out", type=Path, help="folder for the comparison (default: inside the 'after' run)")
+
+    sp = sub.add_parser("instruments", help="ask every instrument of a bench file for its identity")
+    bench_args(sp)
+
+    sub.add_parser("info", help="versions, profiles, limit lines, transports and what is unavailable")
+    return p
+
+
+def _setup_logging(verbose: bool) -> None:
+    from rich.console import Console
+    from rich.logging import RichHandler
+
+    console = Console(stderr=True)
+    handler: logging.Handler
+    if console.is_terminal:
+        handler = RichHandler(console=console, show_path=False, show_time=False)
+        handler.setFormatter(logging.Formatter("%(message)s"))
+    else:
+        handler = logging.StreamHandler(sys.stderr)
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    root = logging.getLogger("bench")
+    root.handlers[:] = [handler]
+    root.setLevel(logging.DEBUG if verbose else logging.INFO)
+    root.propagate = False
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    _setup_logging(args.verbose)
+    from bench import app
+
+    try:
+        return int(app.dispatch(args) or 0)
+    except app.RunInterruptedExit as exc:
+        print(f"bench: {exc}", file=sys.stderr)
+        return 3
+    except BenchError as exc:
+        print(f"bench: {exc}", file=sys.stderr)
+        if args.verbose:
+            for extra in getattr(exc, "all_errors", ())[1:]:
+                print(f"  also: {extra}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("bench: stopped by the operator", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,315 @@
+"""The run executor: carries out a plan on a station, stores every trace, survives faults.
+
+For each planned action: put the bench in its pose (power, probe position and orientation, mast
+height and polarization, turntable azimuth), configure the analyzer, take the sweeps the trace
+mode asks for, fetch, store (committed per trace), mark the action done. A transport fault
+(connection lost, reply timeout) closes everything, backs off (bounded), reconnects,
+resynchronises (``*CLS``, ``*IDN?``, the whole setup again, stage homed again) and redoes the
+action. When retries run out the run is marked ``interrupted`` and ``bench resume`` continues
+from the first action not done.
+
+Dynamic work (the final measurement of suspects found by a prescan) is delegated to
+:mod:`bench.finals`, which uses the same station and store.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+from bench import units
+from bench.drivers.analyzer import SweepSettings
+from bench.errors import BenchError, InstrumentError, PlanError, StoreError, TransportError
+from bench.store import RunStore, TraceMeta
+
+__all__ = ["Station", "Executor", "RetryPolicy", "RunInterrupted", "combine_sweeps"]
+
+log = logging.getLogger("bench.run")
+
+
+class RunInterrupted(BenchError):
+    """The run stopped before the end (faults exhausted the retries, or the operator stopped it)."""
+
+
+@dataclass(frozen=True)
+class RetryPolicy:
+    """Bounded reconnect policy: delays in seconds between attempts (exponential, capped)."""
+
+    attempts: int = 5
+    first_delay_s: float = 1.0
+    max_delay_s: float = 30.0
+
+    def delays(self):
+        delay = self.first_delay_s
+        for _ in range(self.attempts):
+            yield delay
+            delay = min(delay * 2.0, self.max_delay_s)
+
+
+def combine_sweeps(sweeps: list[np.ndarray], mode: str) -> np.ndarray:
+    """Combine repeated sweeps the way an analyzer's trace mode does.
+
+    ``clear-write`` keeps the last, ``max-hold`` the point-wise maximum, ``average`` the mean of
+    the dB values (log averaging, as a log-scaled trace average does: noise reads about 2.51 dB
+    below its RMS value, a CW line is unchanged; reference sheet §8).
+    """
+    if mode == "clear-write" or len(sweeps) == 1:
+        return sweeps[-1]
+    stack = np.vstack(sweeps)
+    if mode == "max-hold":
+        return stack.max(axis=0)
+    if mode == "average":
+        return stack.mean(axis=0)
+    raise PlanError(f"unknown trace mode {mode!r}")
+
+
+@dataclass
+class Station:
+    """The opened instruments of a bench. Built by a connector; closed and rebuilt on faults.
+
+    Attributes
+    ----------
+    analyzer : bench.drivers.analyzer.Analyzer
+    stage, mast, turntable, supply : drivers or None
+    identities : dict
+        ``*IDN?`` / banner of each instrument, for the manifest.
+    """
+
+    analyzer: object
+    stage: object | None = None
+    mast: object | None = None
+    turntable: object | None = None
+    supply: object | None = None
+    identities: dict = field(default_factory=dict)
+
+    def close(self) -> None:
+        for dev in (self.analyzer, self.stage, self.mast, self.turntable, self.supply):
+            if dev is None:
+                continue
+            try:
+                dev.close() if hasattr(dev, "close") else dev.transport.close()
+            except Exception:  # noqa: BLE001 - closing after a fault must not hide the fault
+                pass
+
+
+class Executor:
+    """Carries out a plan.
+
+    Parameters
+    ----------
+    plan : bench.planner.Plan
+        Actions to carry out, in order.
+    store : RunStore
+        Open run folder.
+    connect : callable
+        ``connect() -> Station``: opens and initialises every instrument the plan needs.
+    progress : bench.progress.Progress or None
+    retry : RetryPolicy
+    sleep : callable
+        Used for back-off (injected in tests so they never sleep).
+    on_step_done : callable, optional
+        ``f(executor, last_action)`` after the last action of each step (analysis, plots).
+    dynamic : callable, optional
+        ``f(executor, action)`` carries out a dynamic action (final measurement of suspects).
+    """
+
+    def __init__(self, plan, store: RunStore, connect: Callable[[], Station], *, progress=None,
+                 retry: RetryPolicy = RetryPolicy(), sleep: Callable[[float], None] = time.sleep,
+                 on_step_done: Callable | None = None, dynamic: Callable | None = None) -> None:
+        self.plan = plan
+        self.store = store
+        self._connect = connect
+        self.progress = progress
+        self.retry = retry
+        self.sleep = sleep
+        self.on_step_done = on_step_done
+        self.dynamic = dynamic
+        self.identities: dict = {}
+        self.current_pose = None
+        self.station: Station | None = None
+        self.faults = 0
+        self._powered: bool | None = None
+        self._tool: int | None = None
+        self._rotation: float | None = None
+        self._far: dict = {}
+
+    # ------------------------------------------------------------------ lifecycle
+    def run(self) -> None:
+        done = self.store.done_actions()
+        actions = list(self.plan.actions)
+        if self.progress is not None and done:
+            self.progress.advance("resumed", n=len([a for a in actions if a.index in done]))
+        try:
+            for pos, action in enumerate(actions):
+                if action.index in done:
+                    continue
+                self.store.discard_partial(action.index)
+                t0 = time.monotonic()
+                self._with_retries(action)
+                if self.progress is not None:
+                    self.progress.advance(f"{action.step_kind} {action.step_label}", time.monotonic() - t0)
+                last_of_step = pos + 1 == len(actions) or actions[pos + 1].step_label != action.step_label
+                if last_of_step and self.on_step_done is not None:
+                    self._with_retries_call(lambda a=action: self.on_step_done(self, a), f"after {action.step_label}")
+        finally:
+            if self.station is not None:
+                self._restore_power()
+                self.station.close()
+                self.station = None
+
+    def _ensure_station(self) -> Station:
+        if self.station is None:
+            self.station = self._connect()
+            self.identities.update(self.station.identities)
+            self._powered = None
+            self._tool = None
+            self._rotation = None
+            self._far = {}
+            self.current_pose = None
+        return self.station
+
+    def _with_retries(self, action) -> None:
+        self._with_retries_call(lambda: self.do_action(action), f"action {action.index} ({action.step_label})",
+                                cleanup=lambda: self.store.discard_partial(action.index))
+
+    def _with_retries_call(self, fn: Callable[[], None], what: str, cleanup: Callable | None = None) -> None:
+        delays = self.retry.delays()
+        while True:
+            try:
+                self._ensure_station()
+                fn()
+                return
+            except (TransportError, InstrumentError) as exc:
+                self.faults += 1
+                self.store.log_event("warning", f"{what}: {exc}")
+                log.warning("%s failed: %s", what, exc)
+                if cleanup is not None:
+                    cleanup()
+                if self.station is not None:
+                    self.station.close()
+                    self.station = None
+                delay = next(delays, None)
+                if delay is None:
+                    raise RunInterrupted(f"{what}: giving up after {self.retry.attempts} reconnect attempts: {exc}") from exc
+                log.info("reconnecting in %.1f s", delay)
+                self.sleep(delay)
+
+    # ------------------------------------------------------------------ one action
+    def do_action(self, action) -> None:
+        self._ensure_station()
+        self._set_power(bool(action.board_powered))
+        if getattr(action, "dynamic", False):
+            if self.dynamic is None:
+                raise PlanError(f"action {action.index} ({action.step_label}) is dynamic and no handler is set")
+            self.dynamic(self, action)
+            self.store.mark_done(action.index)
+            return
+        self._set_pose(action.pose)
+        last = len(action.segments) - 1
+        for i, seg in enumerate(action.segments):
+            self.measure_segment(action, i, seg, completes_action=(i == last))
+        if not action.segments:
+            self.store.mark_done(action.index)
+
+    def measure_segment(self, action, seg_index: int, seg, *, completes_action: bool) -> int:
+        """Configure, sweep ``count`` times, combine, store. Returns the trace id."""
+        analyzer = self.station.analyzer
+        settings = SweepSettings(start_hz=seg.start_hz, stop_hz=seg.stop_hz, rbw_hz=seg.rbw_hz,
+                                 vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
+                                 ref_level_dbm=seg.ref_level_dbm, attenuation_db=seg.attenuation_db)
+        analyzer.configure(settings)
+        sweeps = []
+        for _ in range(max(1, seg.count)):
+            analyzer.sweep()
+            sweeps.append(analyzer.fetch_trace(seg.points))
+        level_dbm = combine_sweeps(sweeps, seg.trace_mode)
+        meta = TraceMeta(
+            action_index=action.index, step_label=action.step_label, step_kind=action.step_kind,
+            segment=seg_index, start_hz=seg.start_hz, stop_hz=seg.stop_hz, points=seg.points,
+            rbw_hz=seg.rbw_hz, vbw_hz=seg.vbw_hz, detector=seg.detector, trace_mode=seg.trace_mode,
+            sweeps=len(sweeps), unit="dbuv", board_powered=bool(action.board_powered),
+            **_pose_columns(self.current_pose),
+        )
+        return self.store.add_trace(meta, units.dbm_to_dbuv(level_dbm), completes_action=completes_action)
+
+    # ------------------------------------------------------------------ bench pose
+    def _set_power(self, powered: bool) -> None:
+        if self._powered == powered:
+            return
+        supply = self.station.supply
+        if supply is None:
+            if not powered:
+                raise PlanError("an ambient capture needs the board switched off, and the bench file has no [supply]")
+            self._powered = powered
+            return
+        supply.set_output(powered)
+        self._powered = powered
+
+    def _restore_power(self) -> None:
+        """Leave the board powered as found at the end (ambient steps switch it off)."""
+        try:
+            if self.station is not None and self.station.supply is not None and self._powered is False:
+                self.station.supply.set_output(True)
+        except (TransportError, InstrumentError):
+            pass
+
+    def _set_pose(self, pose) -> None:
+        self.current_pose = pose
+        if pose is None:
+            return
+        st = self.station
+        if hasattr(pose, "tool"):  # a probe pose on the XYZ stage
+            if st.stage is None:
+                raise PlanError("a grid step needs a [stage] in the bench file")
+            if pose.tool != self._tool:
+                st.stage.select_tool(int(pose.tool))
+                self._tool = pose.tool
+            if pose.rotation_deg != self._rotation:
+                # turn the probe only at the travel height: never rotate it close to the board
+                st.stage.move_to(float(pose.x_m), float(pose.y_m), float(st.stage.limits.safe_z_m))
+                st.stage.rotate_to(float(pose.rotation_deg))
+                self._rotation = pose.rotation_deg
+            st.stage.move_to(float(pose.x_m), float(pose.y_m), float(pose.z_m))
+            return
+        height = getattr(pose, "height_m", None)
+        polarization = getattr(pose, "polarization", None)
+        if height is not None or polarization is not None:
+            if st.mast is None:
+                raise PlanError("a far-field pose needs a [mast] in the bench file")
+            if polarization is not None and self._far.get("pol") != polarization:
+                st.mast.set_polarization(polarization)
+                self._far["pol"] = polarization
+            if height is not None and self._far.get("height") != height:
+                st.mast.set_height(float(height))
+                self._far["height"] = height
+        azimuth = getattr(pose, "azimuth_deg", None)
+        if azimuth is not None:
+            if st.turntable is None:
+                raise PlanError("a far-field pose needs a [turntable] in the bench file")
+            if self._far.get("azimuth") != azimuth:
+                st.turntable.set_azimuth(float(azimuth))
+                self._far["azimuth"] = azimuth
+
+
+def _pose_columns(pose) -> dict:
+    """Store columns for a pose (board coordinates for the probe position)."""
+    if pose is None:
+        return {}
+    out = {}
+    if hasattr(pose, "board_x_m"):
+        out.update(x_m=float(pose.board_x_m), y_m=float(pose.board_y_m))
+        board_z = getattr(pose, "board_z_m", None)
+        out["z_m"] = float(board_z) if board_z is not None else None
+    for name in ("rotation_deg", "height_m", "azimuth_deg"):
+        value = getattr(pose, name, None)
+        if value is not None:
+            out[name] = float(value)
+    for name in ("probe", "polarization"):
+        value = getattr(pose, name, None)
+        if value is not None:
+            out[name] = str(value)
+    return out

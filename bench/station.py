@@ -1,0 +1,176 @@
+"""Turn a validated bench file into capabilities (for the planner) and open instruments (to run).
+
+Everything instrument-specific comes from the profiles the bench file names; the address string
+alone picks the transport.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+from bench.drivers.analyzer import Analyzer, load_analyzer_profile
+from bench.errors import BenchError, ConfigError
+from bench.planner import AnalyzerCaps, bench_caps, make_plan
+from bench.run import Station
+from bench.transports import open_transport
+
+__all__ = ["capabilities", "build_plan", "connect_station", "identify_all", "profiles_for"]
+
+log = logging.getLogger("bench.station")
+
+
+def _base(bench) -> Path | None:
+    path = getattr(bench, "source_path", None)
+    return Path(path).parent if path else None
+
+
+def profiles_for(bench) -> dict:
+    """Load every profile the bench file names (errors name the bench section)."""
+    from bench.drivers.positioner import PositionerProfile
+    from bench.drivers.stage import StageProfile
+    from bench.drivers.supply import load_supply_profile
+
+    base = _base(bench)
+    out = {"analyzer": _load(lambda: load_analyzer_profile(bench.analyzer.profile, base_dir=base), "analyzer")}
+    if bench.stage is not None:
+        out["stage"] = _load(lambda: StageProfile.load(bench.stage.profile, base_dir=base), "stage")
+    if bench.mast is not None:
+        out["mast"] = _load(lambda: PositionerProfile.load(bench.mast.profile, base_dir=base), "mast")
+    if bench.turntable is not None:
+        out["turntable"] = _load(lambda: PositionerProfile.load(bench.turntable.profile, base_dir=base), "turntable")
+    if getattr(bench, "supply", None) is not None:
+        out["supply"] = _load(lambda: load_supply_profile(bench.supply.profile, base_dir=base), "supply")
+    return out
+
+
+def _load(fn, section: str):
+    try:
+        return fn()
+    except ConfigError as exc:
+        if exc.key is None:
+            exc.key = f"[{section}] profile"
+            exc.args = (exc.one_line(),)
+        raise
+
+
+def capabilities(bench, profiles: dict | None = None):
+    """Planner capabilities from the bench file and its profiles."""
+    profiles = profiles or profiles_for(bench)
+    ap = profiles["analyzer"]
+    analyzer = AnalyzerCaps(max_points=ap.max_points, min_points=ap.min_points, sweep_time_k=ap.sweep_time_k,
+                            min_sweep_time_s=ap.min_sweep_time_s, transfer_bytes_per_s=ap.transfer_bytes_per_s,
+                            command_overhead_s=ap.command_overhead_s)
+    kwargs = {}
+    if "stage" in profiles:
+        kwargs["stage_accel_m_per_s2"] = profiles["stage"].accel_m_per_s2
+    if "mast" in profiles:
+        kwargs["mast_speed_m_per_s"] = profiles["mast"].height_speed_m_per_s
+    if "turntable" in profiles:
+        kwargs["turntable_speed_deg_per_s"] = profiles["turntable"].azimuth_speed_deg_per_s
+    return bench_caps(bench, analyzer=analyzer, **kwargs)
+
+
+def build_plan(sequence, bench):
+    """Check a sequence against a bench and expand it into actions (no I/O)."""
+    return make_plan(sequence, capabilities(bench))
+
+
+def stage_limits(section):
+    from bench.drivers.stage import StageLimits
+
+    return StageLimits(x_m=tuple(section.limits.x_m), y_m=tuple(section.limits.y_m), z_m=tuple(section.limits.z_m),
+                       safe_z_m=section.safe_z_m, max_feed_m_per_s=section.max_feed_m_per_s,
+                       position_tolerance_m=section.position_tolerance_m, rotary_axis=section.rotary_axis)
+
+
+def connect_station(bench, *, needs: set[str], wait=None) -> Station:
+    """Open and initialise the instruments a plan needs; close what was opened on failure.
+
+    Parameters
+    ----------
+    bench : bench.benchfile.Bench
+    needs : set of str
+        Roles the plan uses: ``analyzer`` always; ``stage``, ``mast``, ``turntable``, ``supply``.
+    wait : callable, optional
+        ``wait(seconds)`` for settle times (the simulated bench passes its virtual clock).
+    """
+    from bench.drivers.positioner import Mast, Turntable
+    from bench.drivers.stage import Stage
+    from bench.drivers.supply import Supply
+
+    profiles = profiles_for(bench)
+    opened = []
+    try:
+        ap = profiles["analyzer"]
+        analyzer = Analyzer(open_transport(bench.analyzer.address, _with_timeout(ap.io, bench.analyzer.timeout_s)), ap)
+        opened.append(analyzer.transport)
+        station = Station(analyzer=analyzer)
+        station.identities["analyzer"] = analyzer.initialize()
+        if "stage" in needs and bench.stage is not None:
+            stage = Stage.open(bench.stage.address, profiles["stage"], stage_limits(bench.stage),
+                               baudrate=bench.stage.baudrate)
+            station.stage = stage
+            opened.append(stage)
+            station.identities["stage"] = stage.connect() or bench.stage.address
+            stage.home()
+        if "mast" in needs and bench.mast is not None:
+            mast = Mast.open(bench.mast.address, profiles["mast"], height_limits_m=bench.mast.height_limits_m)
+            station.mast = mast
+            opened.append(mast)
+            station.identities["mast"] = mast.connect() or bench.mast.address
+        if "turntable" in needs and bench.turntable is not None:
+            table = Turntable.open(bench.turntable.address, profiles["turntable"],
+                                   azimuth_limits_deg=bench.turntable.azimuth_limits_deg)
+            station.turntable = table
+            opened.append(table)
+            station.identities["turntable"] = table.connect() or bench.turntable.address
+        if "supply" in needs and getattr(bench, "supply", None) is not None:
+            sp = profiles["supply"]
+            supply = Supply(open_transport(bench.supply.address, sp.io), sp, wait=wait)
+            station.supply = supply
+            opened.append(supply)
+            station.identities["supply"] = supply.initialize()
+        return station
+    except BaseException:
+        for dev in opened:
+            try:
+                dev.close()
+            except Exception:  # noqa: BLE001 - closing after a failed open
+                pass
+        raise
+
+
+def _with_timeout(io, timeout_s: float):
+    from dataclasses import replace
+
+    return replace(io, timeout_s=timeout_s)
+
+
+def identify_all(bench):
+    """(role, address, identity or 'ERROR: ...') for every instrument of a bench file."""
+    from bench.drivers.analyzer import Analyzer
+
+    rows = []
+    profiles = profiles_for(bench)
+    ap = profiles["analyzer"]
+    try:
+        tr = open_transport(bench.analyzer.address, _with_timeout(ap.io, bench.analyzer.timeout_s))
+        try:
+            rows.append(("analyzer", bench.analyzer.address, Analyzer(tr, ap).identify()))
+        finally:
+            tr.close()
+    except BenchError as exc:
+        rows.append(("analyzer", bench.analyzer.address, f"ERROR: {exc}"))
+    for role in ("stage", "mast", "turntable", "supply"):
+        if getattr(bench, role, None) is None:
+            continue
+        try:
+            st = connect_station(bench, needs={role})
+            try:
+                rows.append((role, getattr(bench, role).address, st.identities.get(role, "")))
+            finally:
+                st.close()
+        except BenchError as exc:
+            rows.append((role, getattr(bench, role).address, f"ERROR: {exc}"))
+    return rows
