@@ -94,6 +94,11 @@ _NUMBER = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
 _QUANTITY = re.compile(rf"^\s*({_NUMBER})\s*([^\s\d].*?)?\s*$")
 
 
+def _a(word: str) -> str:
+    """English indefinite article: 'an angle', 'a frequency'."""
+    return f"an {word}" if word[:1] in "aeiou" else f"a {word}"
+
+
 def parse(value: object, dimension: str) -> float:
     """Parse a quantity string into SI units (or the dB reference of ``dimension``).
 
@@ -117,26 +122,26 @@ def parse(value: object, dimension: str) -> float:
     """
     example = DIMENSIONS[dimension]
     if isinstance(value, bool) or not isinstance(value, (str, int, float)):
-        raise UnitError(f"expected a {dimension} like {example}, found {value!r}")
+        raise UnitError(f"expected {_a(dimension)} like {example}, found {value!r}")
     if isinstance(value, (int, float)):
         raise UnitError(
-            f"expected a {dimension} like {example}, found the bare number {value!r} "
+            f"expected {_a(dimension)} like {example}, found the bare number {value!r} "
             "(write the unit, in quotes)"
         )
     match = _QUANTITY.match(value)
     if not match:
-        raise UnitError(f"expected a {dimension} like {example}, found {value!r}")
+        raise UnitError(f"expected {_a(dimension)} like {example}, found {value!r}")
     number, unit = match.group(1), (match.group(2) or "")
     if not unit:
         raise UnitError(
-            f"expected a {dimension} like {example}, found {value!r} with no unit"
+            f"expected {_a(dimension)} like {example}, found {value!r} with no unit"
         )
     table = _UNITS[dimension]
     factor = table.get(unit.strip().lower().replace(" ", ""))
     if factor is None:
         known = ", ".join(sorted({u for u in table}))
         raise UnitError(
-            f"expected a {dimension} like {example}, found unit {unit!r} in {value!r} "
+            f"expected {_a(dimension)} like {example}, found unit {unit!r} in {value!r} "
             f"(known: {known})"
         )
     result = float(number) * factor

@@ -1,0 +1,284 @@
+"""Bench files: which instruments, addresses, tables, limits and site this station has.
+
+A bench file (TOML, ``schema = 1``) is separate from the portable sequence. Paths of tables and
+photos are resolved relative to the bench file and must exist (unless the loader is told not to
+check). Quantities are SI floats in fields whose name carries the unit.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any, Literal, Optional
+
+import pydantic
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, StrictStr
+
+from bench.tomlsource import (
+    bench_error,
+    check_schema,
+    cross_check_error,
+    format_value,
+    quantity,
+    quantity_list,
+    read_toml,
+    validation_to_config_error,
+)
+
+__all__ = [
+    "AnalyzerSection",
+    "StageSection",
+    "StageLimits",
+    "MastSection",
+    "TurntableSection",
+    "SiteSection",
+    "Probe",
+    "Transducers",
+    "PhotoPoint",
+    "Board",
+    "Bench",
+    "load_bench",
+]
+
+Address = Annotated[StrictStr, Field(min_length=1)]
+LengthPair = quantity_list("length", 2)
+AnglePair = quantity_list("angle", 2)
+
+
+def _resolve_path(value: Any, info: pydantic.ValidationInfo) -> Path:
+    """A path relative to the bench file; must exist when the loader checks files."""
+    if not isinstance(value, str) or not value:
+        raise bench_error(f"expected a file path in quotes, found {format_value(value)}")
+    context = info.context or {}
+    base = Path(context.get("base_dir", "."))
+    path = Path(value) if Path(value).is_absolute() else base / value
+    if context.get("check_files", False) and not path.is_file():
+        raise bench_error(f"expected an existing file (relative to the bench file), found no "
+                          f"file at {format_value(value)}")
+    return path
+
+
+FilePath = Annotated[Path, pydantic.BeforeValidator(_resolve_path)]
+
+
+def _pixel(value: Any) -> tuple[float, float]:
+    ok = isinstance(value, (list, tuple)) and len(value) == 2 and all(
+        isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+    if not ok:
+        raise bench_error(f"expected a pixel position [column, row] like [12, 30], found "
+                          f"{format_value(value)}")
+    return float(value[0]), float(value[1])
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+def _ordered_pairs(pairs: dict[str, tuple[float, float]], unit: str, scale: float) -> None:
+    problems = [((key,), f"expected [min, max] with min < max, found "
+                         f"[{lo * scale:g} {unit}, {hi * scale:g} {unit}]")
+                for key, (lo, hi) in pairs.items() if lo >= hi]
+    if problems:
+        raise cross_check_error(problems)
+
+
+class AnalyzerSection(_Model):
+    """``[analyzer]``: address (VISA resource or serial URL), profile, timeout in s."""
+
+    address: Address
+    profile: StrictStr = "scpi-analyzer"
+    timeout_s: quantity("time", positive=True) = Field(10.0, alias="timeout")
+    noise_figure_db: Optional[quantity("db", non_negative=True)] = Field(
+        None, alias="noise_figure")
+
+
+class SupplySection(_Model):
+    """``[supply]``: a SCPI bench supply that powers the board (ambient captures switch it off)."""
+
+    address: Address
+    profile: StrictStr = "scpi-supply"
+
+
+class StageLimits(_Model):
+    """Soft limits of the stage per axis, stage metres: ``(min, max)``."""
+
+    x_m: LengthPair = Field(alias="x")
+    y_m: LengthPair = Field(alias="y")
+    z_m: LengthPair = Field(alias="z")
+
+    @pydantic.model_validator(mode="after")
+    def _ordered(self) -> "StageLimits":
+        _ordered_pairs({"x": self.x_m, "y": self.y_m, "z": self.z_m}, "mm", 1e3)
+        return self
+
+    def as_dict(self) -> dict[str, tuple[float, float]]:
+        """``{"x": (min_m, max_m), "y": ..., "z": ...}``."""
+        return {"x": self.x_m, "y": self.y_m, "z": self.z_m}
+
+
+class StageSection(_Model):
+    """``[stage]``: the XYZ probe stage (G-code over a serial port or socket).
+
+    ``board_origin_m`` is the stage position of board corner (0, 0) on the board's top
+    surface; ``safe_z_m`` the stage z used for XY travel.
+    """
+
+    address: Address
+    profile: StrictStr = "gcode-cartesian"
+    baudrate: Annotated[StrictInt, Field(gt=0)] = 115200
+    limits: StageLimits
+    safe_z_m: quantity("length") = Field(alias="safe_z")
+    max_feed_m_per_s: quantity("speed", positive=True) = Field(alias="max_feed")
+    position_tolerance_m: quantity("length", positive=True) = Field(
+        5e-5, alias="position_tolerance")
+    board_origin_m: quantity_list("length", 3) = Field(alias="board_origin")
+    rotary_axis: StrictBool = False
+
+    @pydantic.model_validator(mode="after")
+    def _inside(self) -> "StageSection":
+        z_min, z_max = self.limits.z_m
+        problems = []
+        if not z_min <= self.safe_z_m <= z_max:
+            problems.append((("safe_z",), f"expected a height inside the z limits "
+                                          f"[{z_min * 1e3:g} mm, {z_max * 1e3:g} mm], found "
+                                          f"{self.safe_z_m * 1e3:g} mm"))
+        elif self.safe_z_m <= self.board_origin_m[2]:
+            problems.append((("safe_z",), f"expected a travel height above the board surface "
+                                          f"(z = {self.board_origin_m[2] * 1e3:g} mm), found "
+                                          f"{self.safe_z_m * 1e3:g} mm"))
+        if problems:
+            raise cross_check_error(problems)
+        return self
+
+
+class MastSection(_Model):
+    """``[mast]``: antenna mast; height limits in m."""
+
+    address: Address
+    profile: StrictStr = "line-positioner"
+    height_limits_m: quantity_list("length", 2, non_negative=True) = Field(
+        alias="height_limits")
+
+    @pydantic.model_validator(mode="after")
+    def _ordered(self) -> "MastSection":
+        _ordered_pairs({"height_limits": self.height_limits_m}, "m", 1.0)
+        return self
+
+
+class TurntableSection(_Model):
+    """``[turntable]``: azimuth limits in deg."""
+
+    address: Address
+    profile: StrictStr = "line-positioner"
+    azimuth_limits_deg: AnglePair = Field(alias="azimuth_limits")
+
+    @pydantic.model_validator(mode="after")
+    def _ordered(self) -> "TurntableSection":
+        _ordered_pairs({"azimuth_limits": self.azimuth_limits_deg}, "deg", 1.0)
+        return self
+
+
+class SiteSection(_Model):
+    """``[site]``: measurement distance and the largest dimension of the product, m."""
+
+    distance_m: quantity("length", positive=True) = Field(alias="distance")
+    eut_size_m: Optional[quantity("length", positive=True)] = Field(None, alias="eut_size")
+
+
+class Probe(_Model):
+    """``[probes.<name>]``: near-field probe kind, tool number and factor table path."""
+
+    kind: Literal["h-loop", "e-probe"]
+    tool: Annotated[StrictInt, Field(ge=0)]
+    factor: FilePath
+
+
+class Transducers(_Model):
+    """``[transducers]``: far-field receive chain tables (preamp gain subtracts)."""
+
+    antenna: FilePath
+    cables: tuple[FilePath, ...] = ()
+    preamp: Optional[FilePath] = None
+
+
+class PhotoPoint(_Model):
+    """A point of the board photo: pixel (column, row) and board position in m."""
+
+    pixel: Annotated[tuple[float, float], pydantic.BeforeValidator(_pixel)]
+    board_m: LengthPair = Field(alias="board")
+
+
+class Board(_Model):
+    """``[board]``: outline in board metres, optional photo with reference points."""
+
+    outline_m: Optional[Annotated[tuple[LengthPair, ...], Field(min_length=3)]] = Field(
+        None, alias="outline")
+    photo: Optional[FilePath] = None
+    photo_points: tuple[PhotoPoint, ...] = ()
+
+
+class Bench(_Model):
+    """A whole bench file (see the module docstring)."""
+
+    schema_version: Literal[1] = Field(alias="schema")
+    name: StrictStr
+    analyzer: AnalyzerSection
+    stage: Optional[StageSection] = None
+    mast: Optional[MastSection] = None
+    turntable: Optional[TurntableSection] = None
+    site: Optional[SiteSection] = None
+    probes: dict[str, Probe] = {}
+    transducers: Optional[Transducers] = None
+    board: Optional[Board] = None
+    supply: Optional[SupplySection] = None
+    source_path: Optional[Path] = Field(None, exclude=True)
+
+    @pydantic.model_validator(mode="after")
+    def _tools(self) -> "Bench":
+        seen: dict[int, str] = {}
+        problems = []
+        for name, probe in self.probes.items():
+            if probe.tool in seen:
+                problems.append((("probes", name, "tool"),
+                                 f"expected a tool number not used by another probe, found "
+                                 f"{probe.tool} (also probe '{seen[probe.tool]}')"))
+            seen.setdefault(probe.tool, name)
+        if problems:
+            raise cross_check_error(problems)
+        return self
+
+    @property
+    def warnings(self) -> tuple[str, ...]:
+        """Advice that does not stop a run."""
+        out = []
+        if self.mast is not None and self.transducers is None:
+            out.append("[mast] is set but [transducers] is not: far-field readings stay in "
+                       "dBuV, not field strength")
+        if self.board is not None and self.board.photo is not None and len(
+                self.board.photo_points) < 2:
+            out.append("[board] photo needs at least 2 photo_points to be placed on the map")
+        return tuple(out)
+
+
+def load_bench(path: str | Path, *, check_files: bool = True) -> Bench:
+    """Read and validate a bench file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The TOML file; table and photo paths inside are relative to its folder.
+    check_files : bool
+        Require every referred table and photo to exist.
+
+    Raises
+    ------
+    ConfigError
+        One line ``FILE:LINE: KEY.PATH: expected ..., found ...``; ``.all_errors`` holds all.
+    """
+    source = read_toml(path)
+    check_schema(source)
+    context = {"base_dir": Path(path).parent, "check_files": check_files}
+    try:
+        bench = Bench.model_validate(source.data, context=context)
+    except pydantic.ValidationError as exc:
+        raise validation_to_config_error(source, exc, Bench) from None
+    return bench.model_copy(update={"source_path": Path(path)})
