@@ -54,7 +54,7 @@ def prepare(sequence_path: Path, *, bench_path: Path | None, sim: bool, board: P
             stack: ExitStack | None = None) -> Prepared:
     """Load and validate everything, start the simulator if asked, and plan. Writes nothing."""
     from bench.benchfile import load_bench
-    from bench.planner import build_plan
+    from bench.station import build_plan
     from bench.sequence import load_sequence
 
     sequence = load_sequence(sequence_path)

@@ -1,0 +1,90 @@
+"""Direction of imports (docs/architecture.md) and the public error tree.
+
+The rules come from the project's design brief: the simulator is the other side of the wire and
+never imports the drivers or the run engine; units, errors and physics are leaves; drivers reach
+instruments only through transports; analysis never talks to instruments.
+"""
+
+import ast
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def module_files():
+    for path in sorted((ROOT / "bench").rglob("*.py")):
+        rel = path.relative_to(ROOT / "bench").with_suffix("")
+        yield "bench." + ".".join(rel.parts).removesuffix(".__init__"), path
+    for path in sorted((ROOT / "drivers").rglob("*.py")):
+        rel = path.relative_to(ROOT / "drivers").with_suffix("")
+        yield "bench.drivers." + ".".join(rel.parts).removesuffix(".__init__"), path
+
+
+def imports_of(path):
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    out = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            out.update(a.name for a in node.names)
+        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            out.add(node.module)
+    return {m for m in out if m.startswith("bench")}
+
+
+FORBIDDEN = [
+    # (module prefix, forbidden import prefixes)
+    ("bench.sim", ("bench.drivers", "bench.run", "bench.runner", "bench.station", "bench.app", "bench.cli",
+                   "bench.store", "bench.analysis", "bench.report")),
+    ("bench.units", ("bench.drivers", "bench.sim", "bench.run", "bench.store", "bench.analysis",
+                     "bench.physics", "bench.sequence", "bench.transports")),
+    ("bench.errors", ("bench.",)),
+    ("bench.physics", ("bench.drivers", "bench.sim", "bench.run", "bench.store", "bench.analysis")),
+    ("bench.drivers", ("bench.run", "bench.runner", "bench.sim", "bench.store", "bench.analysis",
+                       "bench.app", "bench.cli", "bench.report")),
+    ("bench.transports", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis")),
+    ("bench.analysis", ("bench.drivers", "bench.run", "bench.runner", "bench.sim", "bench.transports",
+                        "bench.app", "bench.cli", "bench.station")),
+    ("bench.store", ("bench.drivers", "bench.run", "bench.sim", "bench.transports", "bench.analysis")),
+    ("bench.sequence", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.transports")),
+    ("bench.planner", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.transports")),
+    ("bench.report", ("bench.drivers", "bench.run", "bench.sim", "bench.transports")),
+]
+
+
+@pytest.mark.parametrize("prefix, banned", FORBIDDEN, ids=[f[0] for f in FORBIDDEN])
+def test_import_direction(prefix, banned):
+    offenders = []
+    for name, path in module_files():
+        if name != prefix and not name.startswith(prefix + "."):
+            continue
+        for imp in imports_of(path):
+            if imp == name:
+                continue
+            if any(imp == b.rstrip(".") or imp.startswith(b if b.endswith(".") else b + ".") or imp == b
+                   for b in banned):
+                offenders.append(f"{name} imports {imp}")
+    assert offenders == []
+
+
+def test_error_tree_public_names():
+    import bench.errors as errors
+
+    assert set(errors.__all__) == {
+        "AnalysisError", "BenchError", "BlockFormatError", "ConfigError", "InstrumentError", "PlanError",
+        "ReplyTimeoutError", "SafetyLimitError", "StoreError", "TransportError", "UnitError",
+    }
+    for name in errors.__all__:
+        assert issubclass(getattr(errors, name), errors.BenchError)
+    assert errors.ConfigError.exit_code == 2
+
+
+def test_no_origin_mentions_in_sources():
+    import re
+
+    pattern = re.compile(r"seed document|the (video|lecture|speaker)\b|course material", re.IGNORECASE)
+    hits = []
+    for _, path in module_files():
+        hits += [f"{path.name}: {m.group(0)}" for m in pattern.finditer(path.read_text(encoding="utf-8"))]
+    assert hits == []
