@@ -1,0 +1,414 @@
+"""Before/after comparison of two runs: did the fix help, where and by how much.
+
+For every step label present in both runs: the corrected spectra overlaid with their
+difference (after minus before, dB: negative is an improvement), the suspects matched by
+frequency with their change in level and margin, and for grid steps the change of the combined
+near-field map and both hot-spot tables. Output: ``compare.html`` (self-contained, like the
+report) and PNGs, by default in ``<after run>/compare-<before run folder name>/``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from bench import plots
+from bench.analysis import maps as maps_mod
+from bench.analysis import runview
+from bench.analysis.peaks import find_peaks_hz
+from bench.errors import AnalysisError, BenchError
+from bench.report import (DISCLAIMER, embed_png, esc, html_table, page, safe_name)
+from bench.store import open_run
+
+__all__ = ["MATCH_COLUMNS", "MapChange", "compare_maps", "compare_runs", "compare_spectra", "match_suspects",
+           "match_tolerance_hz"]
+
+#: Columns of the table returned by :func:`match_suspects`.
+MATCH_COLUMNS = ("change", "detector", "freq_before_hz", "freq_after_hz", "level_before",
+                 "level_after", "delta_db", "margin_before_db", "margin_after_db",
+                 "delta_margin_db", "status_before", "status_after")
+# Relative part of the matching tolerance: 0.1 % of the frequency (a drifting clock stays
+# matched; common practice).
+_MATCH_REL = 1e-3
+# Peaks used for the summary: prominent enough to be an emission, not a noise wiggle.
+_SUMMARY_PROMINENCE_DB = 6.0
+
+
+def _axis(freq_hz, level, name: str) -> tuple[np.ndarray, np.ndarray]:
+    f = np.asarray(freq_hz, float)
+    v = np.asarray(level, float)
+    if f.ndim != 1 or f.shape != v.shape or f.size < 2:
+        raise AnalysisError(f"{name}: expected 1-D frequency and level arrays of equal length "
+                            f"(>= 2 points), found {f.shape} and {v.shape}")
+    if not np.all(np.diff(f) > 0) or f[0] <= 0:
+        raise AnalysisError(f"{name}: expected strictly increasing frequencies > 0 Hz")
+    return f, v
+
+
+def compare_spectra(f1, l1, f2, l2) -> tuple[np.ndarray, np.ndarray]:
+    """Level difference after minus before on common frequency bins.
+
+    Parameters
+    ----------
+    f1, l1 : array_like
+        Before: frequencies in Hz (strictly increasing) and levels in dB.
+    f2, l2 : array_like
+        After, same unit.
+
+    Returns
+    -------
+    (numpy.ndarray, numpy.ndarray)
+        Frequencies in Hz and ``l2 - l1`` in dB. On identical axes, bin by bin. Otherwise the
+        bins of whichever spectrum has fewer points inside the overlap (no resolution is
+        invented), the other spectrum interpolated linearly in dB against log10(f).
+
+    Raises
+    ------
+    AnalysisError
+        The two spans do not overlap.
+    """
+    f1, l1 = _axis(f1, l1, "before")
+    f2, l2 = _axis(f2, l2, "after")
+    if f1.shape == f2.shape and np.allclose(f1, f2, rtol=1e-12, atol=0.0):
+        return f1.copy(), l2 - l1
+    lo, hi = max(f1[0], f2[0]), min(f1[-1], f2[-1])
+    if lo >= hi:
+        raise AnalysisError(f"spans do not overlap: before {f1[0]:.9g} to {f1[-1]:.9g} Hz, "
+                            f"after {f2[0]:.9g} to {f2[-1]:.9g} Hz")
+    in1 = (f1 >= lo) & (f1 <= hi)
+    in2 = (f2 >= lo) & (f2 <= hi)
+    if in1.sum() <= in2.sum():
+        f = f1[in1]
+        return f, _interp_log_f(f, f2, l2) - l1[in1]
+    f = f2[in2]
+    return f, l2[in2] - _interp_log_f(f, f1, l1)
+
+
+def _interp_log_f(f_new, f, level) -> np.ndarray:
+    # dB linear in log10(f), NaN outside (pitfalls: np.interp clamps silently)
+    return np.interp(np.log10(f_new), np.log10(f), level, left=np.nan, right=np.nan)
+
+
+def match_tolerance_hz(freq_hz, rbw_hz: float) -> np.ndarray:
+    """Matching tolerance max(RBW, 0.1 % of f) in Hz, at each frequency."""
+    return np.maximum(float(rbw_hz), _MATCH_REL * np.asarray(freq_hz, float))
+
+
+def _pairs(fb: np.ndarray, fa: np.ndarray, rbw_hz: float) -> list[tuple[int, int]]:
+    """One-to-one pairs (before, after) within tolerance, closest first."""
+    candidates = []
+    for i, f in enumerate(fb):
+        tol = float(match_tolerance_hz(f, rbw_hz))
+        for j in np.flatnonzero(np.abs(fa - f) <= tol):
+            candidates.append((abs(fa[j] - f), i, int(j)))
+    used_b, used_a, pairs = set(), set(), []
+    for _, i, j in sorted(candidates):
+        if i not in used_b and j not in used_a:
+            used_b.add(i)
+            used_a.add(j)
+            pairs.append((i, j))
+    return pairs
+
+
+def _row(change, det, b=None, a=None) -> dict:
+    def get(r, key):
+        return np.nan if r is None or r.get(key) is None else r.get(key)
+
+    row = {"change": change, "detector": det,
+           "freq_before_hz": get(b, "freq_hz"), "freq_after_hz": get(a, "freq_hz"),
+           "level_before": get(b, "level"), "level_after": get(a, "level"),
+           "margin_before_db": get(b, "margin_db"), "margin_after_db": get(a, "margin_db"),
+           "status_before": None if b is None else b.get("status"),
+           "status_after": None if a is None else a.get("status")}
+    row["delta_db"] = row["level_after"] - row["level_before"]
+    row["delta_margin_db"] = row["margin_after_db"] - row["margin_before_db"]
+    return row
+
+
+def match_suspects(before: pd.DataFrame, after: pd.DataFrame, rbw_hz: float) -> pd.DataFrame:
+    """Match result rows of two runs by detector and frequency.
+
+    Parameters
+    ----------
+    before, after : pandas.DataFrame
+        Result rows (``freq_hz``, ``level``, ``detector``, ``margin_db``, ``status``).
+    rbw_hz : float
+        Resolution bandwidth in Hz; two rows match within max(RBW, 0.1 % of f), closest pairs
+        first, each row used once.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns :data:`MATCH_COLUMNS`; ``change`` is ``"matched"``, ``"new"`` (only after) or
+        ``"vanished"`` (only before); ``delta_db`` = level after - level before and
+        ``delta_margin_db`` = margin after - margin before (positive: more margin). Sorted by
+        frequency.
+    """
+    rows = []
+    detectors = sorted(set(before.get("detector", [])) | set(after.get("detector", [])))
+    for det in detectors:
+        b = before[before["detector"] == det].reset_index(drop=True)
+        a = after[after["detector"] == det].reset_index(drop=True)
+        pairs = _pairs(b["freq_hz"].to_numpy(float), a["freq_hz"].to_numpy(float), rbw_hz)
+        rows += [_row("matched", det, b.iloc[i].to_dict(), a.iloc[j].to_dict()) for i, j in pairs]
+        rows += [_row("vanished", det, b=b.iloc[i].to_dict())
+                 for i in sorted(set(range(len(b))) - {i for i, _ in pairs})]
+        rows += [_row("new", det, a=a.iloc[j].to_dict())
+                 for j in sorted(set(range(len(a))) - {j for _, j in pairs})]
+    table = pd.DataFrame(rows, columns=list(MATCH_COLUMNS))
+    order = table["freq_before_hz"].fillna(table["freq_after_hz"])
+    return table.iloc[np.argsort(order.to_numpy(float), kind="stable")].reset_index(drop=True)
+
+
+@dataclass
+class MapChange:
+    """Change of the combined map on the grid nodes both runs measured.
+
+    Attributes
+    ----------
+    x_m, y_m : numpy.ndarray
+        Common grid axes in m.
+    delta_db : numpy.ndarray
+        After minus before, shape ``(len(y_m), len(x_m))``, NaN where either is missing.
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    delta_db: np.ndarray
+
+
+def _common(axis_a: np.ndarray, axis_b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    ia, ib = [], []
+    for i, v in enumerate(axis_a):
+        j = np.flatnonzero(np.abs(axis_b - v) <= 1e-6)
+        if j.size:
+            ia.append(i)
+            ib.append(int(j[0]))
+    return axis_a[ia], np.array(ia, int), np.array(ib, int)
+
+
+def compare_maps(before, after) -> MapChange:
+    """Combined-map change (after minus before, dB) on the grid nodes common to both.
+
+    Raises
+    ------
+    AnalysisError
+        Different units, or no common grid node.
+    """
+    if before.unit != after.unit:
+        raise AnalysisError(f"maps in different units: before {before.unit}, after {after.unit}")
+    x, xb, xa = _common(before.x_m, after.x_m)
+    y, yb, ya = _common(before.y_m, after.y_m)
+    if x.size == 0 or y.size == 0:
+        raise AnalysisError("the two grids share no position (compare scans of the same area)")
+    delta = after.combined[np.ix_(ya, xa)] - before.combined[np.ix_(yb, xb)]
+    return MapChange(x, y, delta)
+
+
+# ----------------------------------------------------------------------------- run comparison
+
+
+@dataclass
+class _StepComparison:
+    label: str
+    unit: str
+    freq_hz: np.ndarray
+    delta_db: np.ndarray
+    peaks_delta: pd.DataFrame
+    matches: pd.DataFrame
+    parts: list[str] = field(default_factory=list)
+
+
+def _check_units(label: str, before, after) -> None:
+    if before.unit != after.unit:
+        raise AnalysisError(f"step {label!r}: cannot compare {before.unit} (before) with "
+                            f"{after.unit} (after)")
+
+
+def _peak_deltas(before, after, f, delta, rbw_hz: float) -> pd.DataFrame:
+    """Delta at the frequencies of emissions (peaks of either spectrum), for the summary."""
+    found = []
+    for spec in (before, after):
+        p = find_peaks_hz(spec.freq_hz, spec.level, prominence_db=_SUMMARY_PROMINENCE_DB,
+                          min_separation_hz=rbw_hz)
+        found.append(p["freq_hz"].to_numpy())
+    freqs = np.unique(np.concatenate(found))
+    if freqs.size == 0 or f.size == 0:
+        return pd.DataFrame({"freq_hz": [], "delta_db": []})
+    idx = np.clip(np.searchsorted(f, freqs), 1, f.size - 1) if f.size > 1 else np.zeros(1, int)
+    idx = np.where(np.abs(f[idx - 1] - freqs) < np.abs(f[idx] - freqs), idx - 1, idx) \
+        if f.size > 1 else idx
+    table = pd.DataFrame({"freq_hz": f[idx], "delta_db": delta[idx]}).dropna()
+    return table.drop_duplicates("freq_hz")
+
+
+def _extremes(freq: np.ndarray, delta: np.ndarray, what: str) -> str:
+    best, worst = int(np.argmin(delta)), int(np.argmax(delta))
+    parts = [f"largest improvement: {delta[best]:+.1f} dB at {freq[best] / 1e6:.1f} MHz"
+             if delta[best] < 0 else "no improvement"]
+    parts.append(f"largest increase: {delta[worst]:+.1f} dB at {freq[worst] / 1e6:.1f} MHz"
+                 if delta[worst] > 0 else "no increase")
+    return f"{'; '.join(parts)} (over {delta.size} {what})"
+
+
+def _summary_line(label: str, cmp: _StepComparison) -> str:
+    """One line: extremes over matched suspects and over spectrum peaks, suspect counts."""
+    texts = []
+    matched = cmp.matches[cmp.matches["change"] == "matched"]
+    if len(matched):
+        texts.append(_extremes(matched["freq_after_hz"].to_numpy(float),
+                               matched["delta_db"].to_numpy(float), "matched suspects"))
+    if len(cmp.peaks_delta):
+        prefix = "spectrum peaks: " if texts else ""
+        texts.append(prefix + _extremes(cmp.peaks_delta["freq_hz"].to_numpy(float),
+                                        cmp.peaks_delta["delta_db"].to_numpy(float),
+                                        "spectrum peaks"))
+    if not texts:
+        texts.append("no emissions to compare")
+    if len(cmp.matches):
+        counts = cmp.matches["change"].value_counts()
+        texts.append(f"suspects matched {counts.get('matched', 0)}, new {counts.get('new', 0)}, "
+                     f"vanished {counts.get('vanished', 0)}")
+    return f"{label}: " + "; ".join(texts)
+
+
+def _compare_step(run_b, run_a, label: str, out: Path) -> _StepComparison:
+    spec_b = runview.corrected_spectrum(run_b, label)
+    spec_a = runview.corrected_spectrum(run_a, label)
+    _check_units(label, spec_b, spec_a)
+    f, delta = compare_spectra(spec_b.freq_hz, spec_b.level, spec_a.freq_hz, spec_a.level)
+    rbw_hz = float(np.nanmax([runview.step_rbw_hz(run_b, label),
+                              runview.step_rbw_hz(run_a, label)]))
+    matches = match_suspects(run_b.results(label), run_a.results(label), rbw_hz)
+    cmp = _StepComparison(label, spec_a.unit, f, delta,
+                          _peak_deltas(spec_b, spec_a, f, delta, rbw_hz), matches)
+    limit = _quiet_limit(run_a, label)
+    path = plots.comparison_png(out / f"{safe_name(label)}-spectra.png",
+                                (spec_b.freq_hz, spec_b.level), (spec_a.freq_hz, spec_a.level),
+                                (f, delta), unit=spec_a.unit, title=f"{label}: before / after",
+                                limits=limit)
+    cmp.parts.append(embed_png(path, f"spectra of {label} before and after"))
+    return cmp
+
+
+def _quiet_limit(run, label):
+    try:
+        return runview.step_limit(run, label)
+    except BenchError:
+        return None
+
+
+_MATCH_HEADINGS = (("change", "change"), ("detector", "detector"),
+                   ("freq_before_hz", "before (MHz)"), ("freq_after_hz", "after (MHz)"),
+                   ("level_before", "level before"), ("level_after", "level after"),
+                   ("delta_db", "change (dB)"), ("margin_before_db", "margin before (dB)"),
+                   ("margin_after_db", "margin after (dB)"),
+                   ("delta_margin_db", "margin change (dB)"), ("status_before", "status before"),
+                   ("status_after", "status after"))
+
+
+def _mhz(value):
+    return (None if value is None or not np.isfinite(value) else value / 1e6), ".4f"
+
+
+def _grid_parts(run_b, run_a, label: str, out: Path, outline) -> list[str]:
+    maps_b, maps_a = maps_mod.grid_maps(run_b, label), maps_mod.grid_maps(run_a, label)
+    change = compare_maps(maps_b, maps_a)
+    path = plots.delta_map_png(out / f"{safe_name(label)}-map-change.png", change.x_m,
+                               change.y_m, change.delta_db,
+                               title=f"{label}: combined map change ({maps_a.what})",
+                               outline_m=outline)
+    parts = [embed_png(path, f"map change of {label}")]
+    if np.any(np.isfinite(change.delta_db)):
+        iy, ix = np.unravel_index(int(np.nanargmin(change.delta_db)), change.delta_db.shape)
+        parts.append(f"<p>Largest map improvement {change.delta_db[iy, ix]:+.1f} dB at x = "
+                     f"{change.x_m[ix] * 1e3:.1f} mm, y = {change.y_m[iy] * 1e3:.1f} mm.</p>")
+    fmt = {"freq_hz": _mhz, "level": ".2f", "x_m": lambda v: (v * 1e3, ".1f"),
+           "y_m": lambda v: (v * 1e3, ".1f"), "rotation_deg": ".0f", "prominence_db": ".1f"}
+    heads = (("freq_hz", "frequency (MHz)"), ("level", "level"), ("x_m", "x (mm)"),
+             ("y_m", "y (mm)"), ("rotation_deg", "rotation (deg)"))
+    for name, run in (("before", run_b), ("after", run_a)):
+        spots = maps_mod.hot_spots(run, label)
+        parts.append(f"<h4>Hot spots {name}</h4>" + html_table(spots, heads, formats=fmt))
+    return parts
+
+
+def _common_labels(run_b, run_a) -> list[str]:
+    before = set(runview.step_labels(run_b))
+    return [lb for lb in runview.step_labels(run_a) if lb in before
+            and not run_b.traces(lb).empty and not run_a.traces(lb).empty]
+
+
+def compare_runs(before_folder, after_folder, *, out=None) -> Path:
+    """Compare two runs step by step and write ``compare.html`` with its PNGs.
+
+    Parameters
+    ----------
+    before_folder, after_folder : str or pathlib.Path
+        Run folders (before and after the change).
+    out : str or pathlib.Path, optional
+        Output folder; default ``<after>/compare-<before folder name>/``.
+
+    Returns
+    -------
+    pathlib.Path
+        The HTML file.
+
+    Raises
+    ------
+    AnalysisError
+        No step label with data in both runs, a step in different units, or spans that do not
+        overlap.
+    """
+    run_b, run_a = open_run(before_folder), open_run(after_folder)
+    try:
+        return _compare_open_runs(run_b, run_a, out)
+    finally:
+        run_b.close()
+        run_a.close()
+
+
+def _compare_open_runs(run_b, run_a, out) -> Path:
+    out = Path(out) if out is not None else \
+        Path(run_a.folder) / f"compare-{Path(run_b.folder).name}"
+    labels = _common_labels(run_b, run_a)
+    if not labels:
+        raise AnalysisError(f"no step label has data in both {run_b.folder} and {run_a.folder}")
+    out.mkdir(parents=True, exist_ok=True)
+    sections, summary = [], []
+    for label in labels:
+        kind = runview.step_info(run_a, label).get("kind", "")
+        cmp = _compare_step(run_b, run_a, label, out)
+        summary.append(_summary_line(label, cmp))
+        body = [f"<h2>Step {esc(label)} ({esc(kind)})</h2>"] + cmp.parts
+        if len(cmp.matches):
+            body.append("<h3>Results matched by frequency</h3>" + html_table(
+                cmp.matches, _MATCH_HEADINGS, formats={
+                    "freq_before_hz": _mhz, "freq_after_hz": _mhz, "level_before": ".2f",
+                    "level_after": ".2f", "delta_db": "+.2f", "margin_before_db": ".2f",
+                    "margin_after_db": ".2f", "delta_margin_db": "+.2f"}))
+        if kind == "grid":
+            outline = run_a.manifest().get("board", {}).get("outline_m")
+            body += _grid_parts(run_b, run_a, label, out, outline)
+        sections.append("".join(body))
+    path = out / "compare.html"
+    path.write_text(_page(run_b, run_a, summary, sections), encoding="utf-8")
+    (out / "summary.txt").write_text("\n".join(summary) + "\n", encoding="utf-8")
+    return path
+
+
+def _page(run_b, run_a, summary: list[str], sections: list[str]) -> str:
+    mb, ma = run_b.manifest(), run_a.manifest()
+    ident = "".join(f"<tr><th>{esc(k)}</th><td>{esc(m.get('name'))}</td><td>{esc(m.get('created'))}"
+                    f"</td><td>{esc(Path(r.folder).name)}</td></tr>"
+                    for k, m, r in (("before", mb, run_b), ("after", ma, run_a)))
+    body = (f"<h1>Before / after: {esc(ma.get('name', ''))}</h1>"
+            f'<div class="notice">{esc(DISCLAIMER)}</div>'
+            f"<table><tr><th></th><th>sequence</th><th>created</th><th>run folder</th></tr>"
+            f"{ident}</table><h2>Summary</h2><p>Changes are after minus before: negative is "
+            "lower emission.</p><ul>" + "".join(f"<li>{esc(s)}</li>" for s in summary) + "</ul>"
+            + "".join(sections))
+    return page("Before / after comparison", body)

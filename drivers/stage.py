@@ -1,0 +1,559 @@
+"""XYZ(A) probe stage driven over G-code, with the bench's safety rules enforced in code.
+
+The driver is generic; the dialect (command spellings, homing command, dwell unit, position
+report format, reply patterns, deadlines) comes from a TOML profile such as
+``gcode-cartesian`` or ``gcode-cnc``. Millimetres and mm/min appear only in the G-code text;
+everything else is metres, seconds and degrees.
+
+Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLimits`):
+
+* a target outside the soft limits is refused with :class:`~bench.errors.SafetyLimitError`
+  before a single byte is sent;
+* no move before the stage has been homed in this session;
+* an XY move happens at the travel height: Z goes up to ``safe_z`` first (never down to it
+  when already higher), then XY, then Z down to the target;
+* the feed never exceeds ``max_feed``; ``G0`` (firmware maximum speed) is never sent;
+* after every move the driver waits for the motion to end and checks the reported position
+  against the target within ``position_tolerance``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from bench.drivers.lineproto import Handshake, LineConversation, compile_pattern
+from bench.drivers.profile import load_profile_data
+from bench.errors import ConfigError, InstrumentError, PlanError, SafetyLimitError
+from bench.transports import TransportSettings, open_transport
+from bench.units import parse
+
+__all__ = ["StageLimits", "StageProfile", "Stage", "plan_path"]
+
+_AXES = ("x", "y", "z")
+_COMMANDS = ("units_mm", "absolute", "home", "move", "wait", "position", "dwell", "dwell_unit",
+             "tool_change", "motors_off", "emergency_stop")
+
+
+# ---------------------------------------------------------------------------------- limits
+
+
+@dataclass(frozen=True)
+class StageLimits:
+    """Safety values of one stage, from the bench file's ``[stage]`` table.
+
+    Attributes
+    ----------
+    x_m, y_m, z_m : tuple of float
+        Soft limits (min, max) of each axis in stage coordinates, metres.
+    safe_z_m : float
+        Travel height for XY moves (stage z), metres.
+    max_feed_m_per_s : float
+        Highest feed the driver may command, m/s.
+    position_tolerance_m : float
+        Largest accepted difference between target and reported position, metres.
+    rotary_axis : bool
+        The stage has an A axis that turns the probe.
+    a_deg : tuple of float
+        Soft limits of the A axis, degrees.
+    """
+
+    x_m: tuple[float, float]
+    y_m: tuple[float, float]
+    z_m: tuple[float, float]
+    safe_z_m: float
+    max_feed_m_per_s: float
+    position_tolerance_m: float
+    rotary_axis: bool = False
+    a_deg: tuple[float, float] = (-360.0, 360.0)
+
+    def __post_init__(self) -> None:
+        for name in ("x_m", "y_m", "z_m", "a_deg"):
+            low, high = getattr(self, name)
+            if not low < high:
+                raise ConfigError(f"stage limits {name}: expected min < max, found [{low}, {high}]")
+        if not self.z_m[0] <= self.safe_z_m <= self.z_m[1]:
+            raise ConfigError(f"stage safe_z {self.safe_z_m * 1e3:g} mm lies outside the z limits "
+                              f"[{self.z_m[0] * 1e3:g}, {self.z_m[1] * 1e3:g}] mm")
+        if not self.max_feed_m_per_s > 0:
+            raise ConfigError(f"stage max_feed: expected > 0 mm/s, found {self.max_feed_m_per_s * 1e3:g} mm/s")
+        if not self.position_tolerance_m > 0:
+            raise ConfigError("stage position_tolerance: expected > 0 mm, "
+                              f"found {self.position_tolerance_m * 1e3:g} mm")
+
+    @classmethod
+    def from_bench(cls, table: dict[str, Any]) -> "StageLimits":
+        """Build from a bench file's ``[stage]`` table (quantities as text with units)."""
+        try:
+            limits = table["limits"]
+            axes = {a: tuple(parse(v, "length") for v in limits[a]) for a in _AXES}
+            rotary = table.get("rotary_limits", ["-360 deg", "360 deg"])
+            return cls(
+                x_m=axes["x"], y_m=axes["y"], z_m=axes["z"],
+                safe_z_m=parse(table["safe_z"], "length"),
+                max_feed_m_per_s=parse(table["max_feed"], "speed"),
+                position_tolerance_m=parse(table.get("position_tolerance", "0.05 mm"), "length"),
+                rotary_axis=bool(table.get("rotary_axis", False)),
+                a_deg=tuple(parse(v, "angle") for v in rotary),
+            )
+        except KeyError as exc:
+            raise ConfigError(f"missing key {exc.args[0]!r}", key=f"stage.{exc.args[0]}") from exc
+
+    def axis_limits_m(self, axis: str) -> tuple[float, float]:
+        """(min, max) of ``axis`` ('x', 'y' or 'z'), metres."""
+        return getattr(self, f"{axis}_m")
+
+
+# --------------------------------------------------------------------------------- profile
+
+
+@dataclass(frozen=True)
+class StageProfile:
+    """A G-code dialect, read from a ``kind = "gcode-stage"`` profile.
+
+    Attributes
+    ----------
+    name : str
+        Where the profile came from (``builtin:<name>`` or a path).
+    description : str
+        One line describing the dialect.
+    handshake : Handshake
+        Reply patterns and deadlines.
+    commands : dict of str
+        Command templates (``move`` takes ``{axes}`` and ``{feed}``, ``dwell`` takes ``{dwell}``,
+        ``tool_change`` takes ``{tool}``).
+    position_reply : re.Pattern
+        Parses the position report; groups ``x``, ``y``, ``z`` in mm and optional ``a`` in deg.
+    decimals : int
+        Decimals of millimetre values in G-code words.
+    rotary_letter : str
+        Letter of the rotary axis.
+    rotary_feed_deg_per_s, rotary_tolerance_deg : float
+        Rotation rate and accepted angle error.
+    home_timeout_s, tool_change_timeout_s : float
+        Reply deadlines of homing and tool change, seconds.
+    accel_m_per_s2 : float
+        Lowest acceleration expected; used only to bound reply deadlines.
+    move_time_factor, move_time_margin_s : float
+        Reply deadline of a move = factor x estimated time + margin.
+    baudrate : int
+        Default serial speed (the bench file may override it).
+    read_termination, write_termination : str
+        Line terminators.
+    open_timeout_s : float
+        Deadline for opening the port.
+    """
+
+    name: str
+    description: str
+    handshake: Handshake
+    commands: dict[str, str]
+    position_reply: Any
+    decimals: int
+    rotary_letter: str
+    rotary_feed_deg_per_s: float
+    rotary_tolerance_deg: float
+    home_timeout_s: float
+    tool_change_timeout_s: float
+    accel_m_per_s2: float
+    move_time_factor: float
+    move_time_margin_s: float
+    baudrate: int = 115200
+    read_termination: str = "\n"
+    write_termination: str = "\n"
+    open_timeout_s: float = 5.0
+
+    @classmethod
+    def load(cls, name_or_path: str | Path, *, base_dir: Path | None = None) -> "StageProfile":
+        """Read a built-in profile by name (``"gcode-cartesian"``) or a profile file by path."""
+        data, origin = load_profile_data(name_or_path, base_dir=base_dir)
+        return cls.from_data(data, origin)
+
+    @classmethod
+    def from_data(cls, data: dict[str, Any], origin: str) -> "StageProfile":
+        """Build from parsed TOML; ConfigError names the file and key of any mistake."""
+        if data.get("schema") != 1 or data.get("kind") != "gcode-stage":
+            raise ConfigError(f"expected schema = 1 and kind = \"gcode-stage\", found schema = "
+                              f"{data.get('schema')!r}, kind = {data.get('kind')!r}", file=origin)
+        commands = data.get("commands", {})
+        missing = [k for k in _COMMANDS if k not in commands]
+        if missing:
+            raise ConfigError(f"missing command template(s) {', '.join(missing)}", file=origin, key="commands")
+        if commands["dwell_unit"] not in ("s", "ms"):
+            raise ConfigError(f"expected \"s\" or \"ms\", found {commands['dwell_unit']!r}",
+                              file=origin, key="commands.dwell_unit")
+        position = data.get("position", {})
+        rotary = data.get("rotary", {})
+        timing = data.get("timing", {})
+        conn = data.get("connection", {})
+        return cls(
+            name=origin,
+            description=str(data.get("description", "")),
+            handshake=Handshake.from_table(data.get("handshake", {}), origin=origin),
+            commands={k: str(v) for k, v in commands.items()},
+            position_reply=compile_pattern(position.get("reply"), origin=origin, key="position.reply"),
+            decimals=int(position.get("decimals", 3)),
+            rotary_letter=str(rotary.get("axis", "A")),
+            rotary_feed_deg_per_s=parse(rotary.get("feed", "90 deg/s"), "angular_speed"),
+            rotary_tolerance_deg=parse(rotary.get("tolerance", "0.1 deg"), "angle"),
+            home_timeout_s=parse(timing.get("home_timeout", "180 s"), "time"),
+            tool_change_timeout_s=parse(timing.get("tool_change_timeout", "60 s"), "time"),
+            accel_m_per_s2=parse(timing.get("accel", "100 mm/s2"), "acceleration"),
+            move_time_factor=float(timing.get("move_time_factor", 1.5)),
+            move_time_margin_s=parse(timing.get("move_time_margin", "10 s"), "time"),
+            baudrate=int(conn.get("baudrate", 115200)),
+            read_termination=str(conn.get("read_termination", "\n")),
+            write_termination=str(conn.get("write_termination", "\n")),
+            open_timeout_s=parse(conn.get("open_timeout", "5 s"), "time"),
+        )
+
+    def transport_settings(self, baudrate: int | None = None) -> TransportSettings:
+        """Settings to open the stage's port (``baudrate`` from the bench file wins)."""
+        return TransportSettings(
+            timeout_s=self.handshake.timeout_s, open_timeout_s=self.open_timeout_s,
+            read_termination=self.read_termination, write_termination=self.write_termination,
+            baudrate=baudrate or self.baudrate,
+        )
+
+
+# ------------------------------------------------------------------------------ path plan
+
+
+def plan_path(start_m: tuple[float, float, float], target_m: tuple[float, float, float],
+              safe_z_m: float, tolerance_m: float) -> list[tuple[float, float, float]]:
+    """Waypoints from ``start_m`` to ``target_m`` that keep XY travel at the safe height.
+
+    Parameters
+    ----------
+    start_m, target_m : tuple of float
+        (x, y, z) in stage coordinates, metres.
+    safe_z_m : float
+        Travel height; XY travel happens at ``max(start z, safe_z_m)``.
+    tolerance_m : float
+        XY changes no larger than this count as "no XY move".
+
+    Returns
+    -------
+    list of tuple
+        Waypoints after the start, the last one being ``target_m``.
+    """
+    sx, sy, sz = start_m
+    tx, ty, tz = target_m
+    if math.hypot(tx - sx, ty - sy) <= tolerance_m:
+        return [target_m]
+    travel_z_m = max(sz, safe_z_m)
+    points = []
+    if travel_z_m != sz:
+        points.append((sx, sy, travel_z_m))
+    points.append((tx, ty, travel_z_m))
+    if tz != travel_z_m:
+        points.append(target_m)
+    return points
+
+
+# ----------------------------------------------------------------------------------- stage
+
+
+class Stage:
+    """A G-code XYZ(A) stage.
+
+    Parameters
+    ----------
+    transport : Transport
+        Open line transport (``bench.transports.open_transport``).
+    profile : StageProfile
+        The controller's dialect.
+    limits : StageLimits
+        This bench's soft limits, travel height, maximum feed and tolerance.
+
+    Notes
+    -----
+    The constructor does no I/O; call :meth:`connect` first. One owner per stage.
+    """
+
+    def __init__(self, transport, profile: StageProfile, limits: StageLimits) -> None:
+        self.profile = profile
+        self.limits = limits
+        self._conv = LineConversation(transport, profile.handshake)
+        self._homed = False
+        self._position: tuple[float, float, float, float | None] | None = None
+
+    @classmethod
+    def open(cls, address: str, profile: StageProfile, limits: StageLimits, *,
+             baudrate: int | None = None) -> "Stage":
+        """Open the transport ``address`` names and wrap it (no G-code sent yet)."""
+        return cls(open_transport(address, profile.transport_settings(baudrate)), profile, limits)
+
+    @property
+    def address(self) -> str:
+        """Address of the controller."""
+        return self._conv.address
+
+    @property
+    def homed(self) -> bool:
+        """True once :meth:`home` succeeded (and motors were not switched off since)."""
+        return self._homed
+
+    # ---------------------------------------------------------------------------- set-up
+
+    def connect(self) -> str:
+        """Read the start-up banner, then select millimetres and absolute coordinates.
+
+        Returns
+        -------
+        str
+            The banner line ('' when the dialect has none).
+        """
+        banner = self._conv.read_banner()
+        if self.profile.handshake.line_numbers:
+            self._conv.reset_line_numbers(self.profile.commands.get("line_number_reset", "M110 N0"))
+        self._send("units_mm")
+        self._send("absolute")
+        return banner
+
+    initialize = connect
+
+    def identify(self) -> str:
+        """The controller's identification lines, joined with ``'; '``."""
+        reply = self._conv.command(self.profile.commands.get("identify", "M115"))
+        return "; ".join(reply.lines) or reply.ok_text
+
+    def home(self) -> tuple[float, ...]:
+        """Run the homing command, then read the position.
+
+        Returns
+        -------
+        tuple of float
+            Position after homing, as :meth:`position` returns it.
+        """
+        self._position = None
+        self._conv.command(self.profile.commands["home"], timeout_s=self.profile.home_timeout_s)
+        self._homed = True
+        return self.position()
+
+    # ----------------------------------------------------------------------------- moves
+
+    def move_to(self, x_m: float, y_m: float, z_m: float, *,
+                feed_m_per_s: float | None = None) -> tuple[float, ...]:
+        """Move the probe to (x, y, z), XY travel at the safe height; verify the position.
+
+        Parameters
+        ----------
+        x_m, y_m, z_m : float
+            Target in stage coordinates, metres.
+        feed_m_per_s : float, optional
+            Feed, m/s; default and ceiling: the bench's ``max_feed``.
+
+        Returns
+        -------
+        tuple of float
+            Reported position after the move (see :meth:`position`).
+
+        Raises
+        ------
+        SafetyLimitError
+            Target outside the soft limits or feed above ``max_feed`` (nothing sent).
+        PlanError
+            The stage is not homed (nothing sent).
+        InstrumentError
+            The controller refused, or the reported position misses the target.
+        """
+        target_m = (float(x_m), float(y_m), float(z_m))
+        for axis, value in zip(_AXES, target_m):
+            self._check_axis(axis, value)
+        feed = self._feed(feed_m_per_s)
+        self._require_homed("move")
+        start = self._known_position()
+        waypoints = plan_path(start[:3], target_m, self.limits.safe_z_m, self.limits.position_tolerance_m)
+        self._run_linear(start[:3], waypoints, feed)
+        return self._verify(target_m, None)
+
+    def rotate_to(self, angle_deg: float, *, rate_deg_per_s: float | None = None) -> tuple[float, ...]:
+        """Turn the probe with the rotary axis; below the safe height, lift first and come back.
+
+        Parameters
+        ----------
+        angle_deg : float
+            Target angle, degrees.
+        rate_deg_per_s : float, optional
+            Rotation rate, deg/s (default: the profile's).
+
+        Raises
+        ------
+        PlanError
+            The bench has no rotary axis, or the stage is not homed.
+        SafetyLimitError
+            Angle outside the rotary limits.
+        """
+        if not self.limits.rotary_axis:
+            raise PlanError(f"{self.address}: the stage has no rotary axis (bench file: rotary_axis = false); "
+                            f"cannot turn the probe to {angle_deg:g} deg")
+        low, high = self.limits.a_deg
+        if not low <= angle_deg <= high:
+            raise SafetyLimitError(f"stage {self.profile.rotary_letter} target {angle_deg:g} deg outside "
+                                   f"the rotary limits [{low:g}, {high:g}] deg")
+        rate = rate_deg_per_s or self.profile.rotary_feed_deg_per_s
+        self._require_homed("rotate")
+        start = self._known_position()
+        x, y, z = start[:3]
+        lift = z < self.limits.safe_z_m
+        feed = self.limits.max_feed_m_per_s
+        if lift:
+            self._run_linear((x, y, z), [(x, y, self.limits.safe_z_m)], feed)
+        self._rotate(start[3] or 0.0, angle_deg, rate)
+        if lift:
+            self._run_linear((x, y, self.limits.safe_z_m), [(x, y, z)], feed)
+        return self._verify((x, y, z), angle_deg)
+
+    def select_tool(self, tool: int) -> None:
+        """Mount probe ``tool`` (``T<n> M6``), lifting to the safe height first when homed."""
+        if not isinstance(tool, int) or isinstance(tool, bool) or tool < 0:
+            raise PlanError(f"tool number must be an integer >= 0, found {tool!r}")
+        if self._homed:
+            start = self._known_position()
+            if start[2] < self.limits.safe_z_m:
+                x, y, _ = start[:3]
+                self._run_linear(start[:3], [(x, y, self.limits.safe_z_m)], self.limits.max_feed_m_per_s)
+        self._position = None
+        self._conv.command(self.profile.commands["tool_change"].format(tool=tool),
+                           timeout_s=self.profile.tool_change_timeout_s)
+
+    def dwell(self, seconds: float) -> None:
+        """Let the controller pause (after buffered moves end) for ``seconds``."""
+        if seconds < 0:
+            raise PlanError(f"dwell must be >= 0 s, found {seconds:g} s")
+        value = seconds * 1e3 if self.profile.commands["dwell_unit"] == "ms" else seconds
+        text = self.profile.commands["dwell"].format(dwell=f"{value:.6g}")
+        self._conv.command(text, timeout_s=seconds + self.profile.handshake.timeout_s)
+
+    def position(self) -> tuple[float, ...]:
+        """Wait for the motion to end, then read the position.
+
+        Returns
+        -------
+        tuple of float
+            (x_m, y_m, z_m), plus the angle in degrees when the bench has a rotary axis.
+        """
+        self._wait(self.profile.handshake.timeout_s)
+        pos = self._report()
+        self._position = pos
+        return pos[:3] + ((pos[3] or 0.0,) if self.limits.rotary_axis else ())
+
+    def motors_off(self) -> None:
+        """Switch the motors off; the stage must be homed again before moving."""
+        self._homed = False
+        self._position = None
+        self._send("motors_off")
+
+    def emergency_stop(self) -> None:
+        """Send the emergency stop and wait for nothing; the controller needs a reset after."""
+        self._homed = False
+        self._position = None
+        self._conv.send_without_reply(self.profile.commands["emergency_stop"])
+
+    def close(self) -> None:
+        """Close the transport (the stage stays where it is)."""
+        self._conv.transport.close()
+
+    # --------------------------------------------------------------------------- helpers
+
+    def _send(self, key: str, timeout_s: float | None = None):
+        return self._conv.command(self.profile.commands[key], timeout_s=timeout_s)
+
+    def _check_axis(self, axis: str, value_m: float) -> None:
+        low, high = self.limits.axis_limits_m(axis)
+        if not (math.isfinite(value_m) and low <= value_m <= high):
+            raise SafetyLimitError(f"stage {axis.upper()} target {value_m * 1e3:.3f} mm outside the soft limits "
+                                   f"[{low * 1e3:g}, {high * 1e3:g}] mm (bench file [stage] limits)")
+
+    def _feed(self, feed_m_per_s: float | None) -> float:
+        limit = self.limits.max_feed_m_per_s
+        if feed_m_per_s is None:
+            return limit
+        if not 0 < feed_m_per_s <= limit:
+            raise SafetyLimitError(f"stage feed {feed_m_per_s * 1e3:g} mm/s outside (0, {limit * 1e3:g}] mm/s "
+                                   "(bench file [stage] max_feed)")
+        return feed_m_per_s
+
+    def _require_homed(self, what: str) -> None:
+        if not self._homed:
+            raise PlanError(f"{self.address}: refusing to {what} an unhomed stage; home it first")
+
+    def _known_position(self) -> tuple[float, float, float, float | None]:
+        if self._position is None:
+            self.position()
+        return self._position
+
+    def _mm(self, value_m: float) -> str:
+        return f"{value_m * 1e3:.{self.profile.decimals}f}"
+
+    def _run_linear(self, start_m, waypoints, feed_m_per_s: float) -> None:
+        """Send linear moves through ``waypoints`` (only the axes that change), then wait."""
+        self._position = None  # unknown until verified
+        feed_text = f"{feed_m_per_s * 60e3:.0f}"  # mm/min (reference sheet §10: F in units per minute)
+        total_s = 0.0
+        previous = start_m
+        for point in waypoints:
+            words = [f"{axis.upper()}{self._mm(new)}" for axis, old, new in zip(_AXES, previous, point)
+                     if self._mm(new) != self._mm(old)]
+            if words:
+                length_m = math.dist(previous, point)
+                deadline_s = self._move_deadline_s(length_m, feed_m_per_s)
+                total_s += deadline_s
+                self._conv.command(self.profile.commands["move"].format(axes=" ".join(words), feed=feed_text),
+                                   timeout_s=deadline_s)
+            previous = point
+        self._wait(total_s)
+
+    def _rotate(self, start_deg: float, angle_deg: float, rate_deg_per_s: float) -> None:
+        self._position = None
+        words = f"{self.profile.rotary_letter}{angle_deg:.3f}"
+        feed_text = f"{rate_deg_per_s * 60:.0f}"  # deg/min for a rotary-only move (RS274NGC)
+        # deg treated like mm in the deadline estimate: rate in deg/s, accel in deg/s^2 (x1e3)
+        deadline_s = self._move_deadline_s(abs(angle_deg - start_deg) * 1e-3, rate_deg_per_s * 1e-3)
+        self._conv.command(self.profile.commands["move"].format(axes=words, feed=feed_text), timeout_s=deadline_s)
+        self._wait(deadline_s)
+
+    def _move_deadline_s(self, length_m: float, feed_m_per_s: float) -> float:
+        # d/v + v/a bounds the trapezoidal and the triangular move time from above
+        estimate_s = length_m / feed_m_per_s + feed_m_per_s / self.profile.accel_m_per_s2
+        return self.profile.move_time_factor * estimate_s + self.profile.move_time_margin_s
+
+    def _wait(self, timeout_s: float) -> None:
+        self._conv.command(self.profile.commands["wait"],
+                           timeout_s=max(timeout_s, self.profile.handshake.timeout_s))
+
+    def _report(self) -> tuple[float, float, float, float | None]:
+        command = self.profile.commands["position"]
+        reply = self._conv.command(command)
+        match = reply.find(self.profile.position_reply)
+        if match is None:
+            found = " | ".join(reply.lines) or "(no lines)"
+            raise InstrumentError(self.address, command, None,
+                                  f"expected a position report matching the profile, found {found!r}")
+        values = match.groupdict()
+        xyz = tuple(float(values[a]) * 1e-3 for a in _AXES)
+        a_deg = float(values["a"]) if values.get("a") is not None else None
+        return (*xyz, a_deg)
+
+    def _verify(self, target_m: tuple[float, float, float], angle_deg: float | None) -> tuple[float, ...]:
+        # the moves just waited for the motion to end, so the report needs no second wait
+        self._position = self._report()
+        pos = self._position
+        reported = pos[:3] + ((pos[3] or 0.0,) if self.limits.rotary_axis else ())
+        tol = self.limits.position_tolerance_m
+        misses = [axis for axis, want, got in zip(_AXES, target_m, reported) if abs(want - got) > tol]
+        if angle_deg is not None and abs(angle_deg - (self._position[3] or 0.0)) > self.profile.rotary_tolerance_deg:
+            misses.append(self.profile.rotary_letter.lower())
+        if misses:
+            want = " ".join(f"{a.upper()}{v * 1e3:.3f}" for a, v in zip(_AXES, target_m))
+            got = " ".join(f"{a.upper()}{v * 1e3:.3f}" for a, v in zip(_AXES, reported))
+            if angle_deg is not None:
+                want += f" {self.profile.rotary_letter}{angle_deg:.3f}"
+                got += f" {self.profile.rotary_letter}{self._position[3] or 0.0:.3f}"
+            raise InstrumentError(self.address, self.profile.commands["position"], None,
+                                  f"position check failed on {','.join(misses)}: expected {want} mm, "
+                                  f"reported {got} mm (tolerance {tol * 1e3:g} mm)")
+        return reported
