@@ -146,8 +146,6 @@ def _step_hook(prep, folder: Path, plots: bool):
             table = analyze_prescan(executor.store, step, ctx)
             counts = table["status"].value_counts().to_dict() if len(table) else {}
             log.info("prescan %s: %s", step.label, ", ".join(f"{v} {k}" for k, v in counts.items()) or "no peaks")
-        if plots:
-            _plot_step(executor.store, step.label)
 
     return hook
 
@@ -191,15 +189,6 @@ def _dynamic_handler(prep):
     return handler
 
 
-def _plot_step(store, label: str) -> None:
-    try:
-        from bench.report import plot_step
-
-        plot_step(store, label)
-    except (AnalysisError, StoreError) as exc:
-        log.warning("no plot for step %s: %s", label, exc)
-
-
 def _execute(prep, store: RunStore, plots: bool) -> None:
     from bench.station import connect_station
 
@@ -209,7 +198,9 @@ def _execute(prep, store: RunStore, plots: bool) -> None:
     live = sys.stderr.isatty()
     progress = Progress(len(plan.actions), plan.total_time_s, live=live)
     retry = RetryPolicy(first_delay_s=0.05, attempts=5) if prep.sim is not None else RetryPolicy()
-    executor = Executor(plan, store, lambda: connect_station(prep.bench, needs=needs, wait=wait),
+    poll_sleep = (lambda s: None) if prep.sim is not None else None
+    executor = Executor(plan, store, lambda: connect_station(prep.bench, needs=needs, wait=wait,
+                                                             poll_sleep=poll_sleep),
                         progress=progress, retry=retry, on_step_done=_step_hook(prep, store.folder, plots),
                         dynamic=_dynamic_handler(prep))
     runlog = _RunLog(store.folder)

@@ -64,10 +64,10 @@ def capabilities(bench, profiles: dict | None = None):
     kwargs = {}
     if "stage" in profiles:
         kwargs["stage_accel_m_per_s2"] = profiles["stage"].accel_m_per_s2
-    if "mast" in profiles:
-        kwargs["mast_speed_m_per_s"] = profiles["mast"].height_speed_m_per_s
-    if "turntable" in profiles:
-        kwargs["turntable_speed_deg_per_s"] = profiles["turntable"].azimuth_speed_deg_per_s
+    if "mast" in profiles and profiles["mast"].mast is not None:
+        kwargs["mast_speed_m_per_s"] = profiles["mast"].mast.speed_per_s
+    if "turntable" in profiles and profiles["turntable"].turntable is not None:
+        kwargs["turntable_speed_deg_per_s"] = profiles["turntable"].turntable.speed_per_s
     return bench_caps(bench, analyzer=analyzer, **kwargs)
 
 
@@ -84,7 +84,7 @@ def stage_limits(section):
                        position_tolerance_m=section.position_tolerance_m, rotary_axis=section.rotary_axis)
 
 
-def connect_station(bench, *, needs: set[str], wait=None) -> Station:
+def connect_station(bench, *, needs: set[str], wait=None, poll_sleep=None) -> Station:
     """Open and initialise the instruments a plan needs; close what was opened on failure.
 
     Parameters
@@ -94,8 +94,13 @@ def connect_station(bench, *, needs: set[str], wait=None) -> Station:
         Roles the plan uses: ``analyzer`` always; ``stage``, ``mast``, ``turntable``, ``supply``.
     wait : callable, optional
         ``wait(seconds)`` for settle times (the simulated bench passes its virtual clock).
+    poll_sleep : callable, optional
+        Sleep between busy polls of the mast and turntable (default ``time.sleep``; the
+        simulated bench advances its own clock on every poll and passes a no-op).
     """
-    from bench.drivers.positioner import Mast, Turntable
+    import time
+
+    from bench.drivers.positioner import Mast, MastLimits, Turntable, TurntableLimits
     from bench.drivers.stage import Stage
     from bench.drivers.supply import Supply
 
@@ -115,13 +120,15 @@ def connect_station(bench, *, needs: set[str], wait=None) -> Station:
             station.identities["stage"] = stage.connect() or bench.stage.address
             stage.home()
         if "mast" in needs and bench.mast is not None:
-            mast = Mast.open(bench.mast.address, profiles["mast"], height_limits_m=bench.mast.height_limits_m)
+            mast = Mast.open(bench.mast.address, profiles["mast"], MastLimits(tuple(bench.mast.height_limits_m)),
+                             sleep=poll_sleep or time.sleep)
             station.mast = mast
             opened.append(mast)
             station.identities["mast"] = mast.connect() or bench.mast.address
         if "turntable" in needs and bench.turntable is not None:
             table = Turntable.open(bench.turntable.address, profiles["turntable"],
-                                   azimuth_limits_deg=bench.turntable.azimuth_limits_deg)
+                                   TurntableLimits(tuple(bench.turntable.azimuth_limits_deg)),
+                                   sleep=poll_sleep or time.sleep)
             station.turntable = table
             opened.append(table)
             station.identities["turntable"] = table.connect() or bench.turntable.address

@@ -8,7 +8,6 @@ in real-time mode the clock also waits that long, for demonstrations.
 
 from __future__ import annotations
 
-import threading
 import time
 from collections.abc import Callable
 
