@@ -131,12 +131,31 @@ def analyze_prescan(store, step, ctx: FarFieldContext, *, max_pass_rows: int = 1
     return pd.DataFrame(rows)
 
 
-def _narrow_segment(freq_hz: float, span_hz: float, rbw_hz: float, detector: str, points: int,
-                    dwell_s: float | None = None) -> Segment:
+def _narrow_segment(freq_hz: float, span_hz: float, rbw_hz: float, detector: str, points: int) -> Segment:
+    """A narrow span around a suspect (peak detector, coupled sweep time) to find it exactly."""
     span = max(span_hz, 10.0 * rbw_hz)
     return Segment(start_hz=freq_hz - span / 2, stop_hz=freq_hz + span / 2, points=points, rbw_hz=rbw_hz,
                    vbw_hz=3.0 * rbw_hz, detector=detector, ref_level_dbm=None, attenuation_db=None,
-                   trace_mode="clear-write", count=1, est_sweep_time_s=dwell_s or 0.0)
+                   trace_mode="clear-write", count=1, est_sweep_time_s=0.0)
+
+
+def _zero_span_segment(freq_hz: float, rbw_hz: float, detector: str, points: int, dwell_s: float) -> Segment:
+    """Zero span at one frequency for ``dwell_s``: the detector reading is the trace maximum.
+
+    A dwell of 1 s lets the quasi-peak detector weight pulses down to about 5 Hz, and a peak
+    reading must dwell at least one period of the slowest repetition (reference sheet §1.8).
+    """
+    return Segment(start_hz=freq_hz, stop_hz=freq_hz, points=points, rbw_hz=rbw_hz, vbw_hz=3.0 * rbw_hz,
+                   detector=detector, ref_level_dbm=None, attenuation_db=None, trace_mode="clear-write",
+                   count=1, est_sweep_time_s=dwell_s, sweep_time_s=dwell_s)
+
+
+def _locate(executor, action, seg: Segment, freq_hz: float, rbw_hz: float) -> float:
+    """Frequency of the strongest point within +-RBW of ``freq_hz`` in a narrow-span sweep."""
+    tid = executor.measure_segment(action, 0, seg, completes_action=False)
+    f, v = executor.store.trace(tid)
+    near = np.abs(f - freq_hz) <= rbw_hz
+    return float(f[near][np.argmax(v[near])]) if near.any() else freq_hz
 
 
 def _read_at(executor, action, seg: Segment, freq_hz: float, rbw_hz: float) -> float:
@@ -163,28 +182,35 @@ def run_finals(executor, action, step, prescan_step, sweep, ctx: FarFieldContext
         best = _search(executor, action, peak_seg, f0, sweep.rbw_hz, pol, height, azimuth, step,
                        mast_limits_m, turntable_limits_deg)
         executor._set_pose(FarFieldPose(*best))
-        for det in step.detectors:
-            seg = _narrow_segment(f0, step.span_hz, sweep.rbw_hz, det, points, step.dwell_s)
-            raw = _read_at(executor, action, seg, f0, sweep.rbw_hz)
-            level = float(ctx.correct(np.array([f0]), np.array([raw]))[0])
-            lim_det = LIMIT_DETECTOR.get(det, "peak")
-            limit = float(ctx.limit.level(lim_det, np.array([f0]))[0])
-            if np.isfinite(limit):
-                margin = limit - level
-                status = "pass" if margin >= 0 else "fail"
-                note = ""
-            else:
-                margin, status = None, "inconclusive"
-                note = f"no {lim_det} limit line at this frequency in {ctx.limit.name}"
-            rows.append(dict(step_label=step.label, freq_hz=f0, level=level, unit=ctx.limit.quantity,
-                             detector=det, limit_level=limit if np.isfinite(limit) else None,
-                             margin_db=margin, status=status, polarization=best[1], height_m=best[0],
-                             azimuth_deg=best[2], chain=ctx.chain_text, note=note))
-            log.info("final %s: %.3f MHz %s %.1f %s (limit %s)", step.label, f0 / 1e6, det, level,
-                     ctx.limit.quantity, f"{limit:.1f}" if np.isfinite(limit) else "none")
+        f_exact = _locate(executor, action, peak_seg, f0, sweep.rbw_hz)
+        # the peak reading at the final pose first: peak >= quasi-peak >= average on one signal
+        detectors = ("peak",) + tuple(d for d in step.detectors if d != "peak")
+        for det in detectors:
+            seg = _zero_span_segment(f_exact, sweep.rbw_hz, det, points, step.dwell_s)
+            raw = _read_at(executor, action, seg, f_exact, sweep.rbw_hz)
+            rows.append(_final_row(step, ctx, f_exact, det, raw, best))
     store.clear_results(step.label)
     store.add_results(rows)
     return pd.DataFrame(rows)
+
+
+def _final_row(step, ctx: FarFieldContext, f0: float, det: str, raw_dbuv: float, pose) -> dict:
+    """One final reading compared with the limit line of its detector."""
+    level = float(ctx.correct(np.array([f0]), np.array([raw_dbuv]))[0])
+    lim_det = LIMIT_DETECTOR.get(det, "peak")
+    limit = float(ctx.limit.level(lim_det, np.array([f0]))[0])
+    if np.isfinite(limit):
+        margin = limit - level
+        status, note = ("pass" if margin >= 0 else "fail"), ""
+    else:
+        # e.g. CISPR 32 has no average (or peak) line below 1 GHz: the reading is information
+        margin, status = None, "info"
+        note = f"no {lim_det} limit line at this frequency in {ctx.limit.name}"
+    log.info("final %s: %.3f MHz %s %.1f %s (limit %s)", step.label, f0 / 1e6, det, level,
+             ctx.limit.quantity, f"{limit:.1f}" if np.isfinite(limit) else "none")
+    return dict(step_label=step.label, freq_hz=f0, level=level, unit=ctx.limit.quantity, detector=det,
+                limit_level=limit if np.isfinite(limit) else None, margin_db=margin, status=status,
+                polarization=pose[1], height_m=pose[0], azimuth_deg=pose[2], chain=ctx.chain_text, note=note)
 
 
 def _search(executor, action, seg, f0, rbw_hz, pol, height, azimuth, step, mast_limits_m, turntable_limits_deg):

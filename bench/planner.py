@@ -213,6 +213,7 @@ class Segment:
     trace_mode: str
     count: int
     est_sweep_time_s: float
+    sweep_time_s: Optional[float] = None
 
     @property
     def step_hz(self) -> float:

@@ -220,13 +220,20 @@ class Executor:
         analyzer = self.station.analyzer
         settings = SweepSettings(start_hz=seg.start_hz, stop_hz=seg.stop_hz, rbw_hz=seg.rbw_hz,
                                  vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
-                                 ref_level_dbm=seg.ref_level_dbm, attenuation_db=seg.attenuation_db)
+                                 ref_level_dbm=seg.ref_level_dbm, attenuation_db=seg.attenuation_db,
+                                 sweep_time_s=getattr(seg, "sweep_time_s", None))
         analyzer.configure(settings)
         sweeps = []
         for _ in range(max(1, seg.count)):
             analyzer.sweep()
             sweeps.append(analyzer.fetch_trace(seg.points))
         level_dbm = combine_sweeps(sweeps, seg.trace_mode)
+        for warning in analyzer.take_warnings():
+            text = (f"{action.step_label} action {action.index}: analyzer warning {warning}: the input "
+                    "may be overloaded; add attenuation and compare (a 10 dB step should move the "
+                    "reading by < 1 dB)")
+            log.warning(text)
+            self.store.log_event("warning", text)
         meta = TraceMeta(
             action_index=action.index, step_label=action.step_label, step_kind=action.step_kind,
             segment=seg_index, start_hz=seg.start_hz, stop_hz=seg.stop_hz, points=seg.points,

@@ -32,10 +32,10 @@ __all__ = ["AnalyzerProfile", "Analyzer", "SweepSettings", "load_analyzer_profil
 DETECTORS = ("peak", "negative", "sample", "average", "rms", "quasi-peak", "cispr-average")
 
 _SETTING_KEYS = ("start_hz", "stop_hz", "rbw_hz", "vbw_hz", "points", "detector",
-                 "ref_level_dbm", "attenuation_db")
+                 "ref_level_dbm", "attenuation_db", "sweep_time_s")
 _COMMAND_KEYS = ("identify", "reset", "clear_status", "error_query", "single_sweep_mode",
                  "trace_format", "byte_order_little", "byte_order_big", "power_unit",
-                 "sweep_and_wait", "sweep_time_query", "fetch_trace")
+                 "sweep_and_wait", "sweep_time_query", "sweep_time_auto", "fetch_trace")
 
 
 class _Strict(BaseModel):
@@ -87,6 +87,7 @@ class _ProfileModel(_Strict):
     detectors: dict[str, str]
     settings: dict[str, _Setting]
     commands: dict[str, str]
+    warning_codes: list[int] = []
 
 
 @dataclass(frozen=True)
@@ -116,6 +117,7 @@ class AnalyzerProfile:
     detectors: dict
     settings: dict
     commands: dict
+    warning_codes: tuple = ()
 
     def estimate_sweep_time_s(self, span_hz: float, rbw_hz: float) -> float:
         """Swept-analyzer minimum sweep time ST = k*span/RBW^2, floored (reference sheet §8)."""
@@ -175,6 +177,7 @@ def load_analyzer_profile(name_or_path: str | Path, *, base_dir: Path | None = N
         detectors=dict(model.detectors),
         settings={k: (v.set, v.query) for k, v in model.settings.items()},
         commands=dict(model.commands),
+        warning_codes=tuple(model.warning_codes),
     )
 
 
@@ -194,6 +197,9 @@ class SweepSettings:
         Trade name, one of :data:`DETECTORS`.
     ref_level_dbm, attenuation_db : float or None
         None leaves the instrument's value unchanged.
+    sweep_time_s : float or None
+        Manual sweep time (with ``start_hz == stop_hz``, zero span: the dwell at one frequency);
+        None lets the instrument couple it to span and RBW.
     """
 
     start_hz: float
@@ -204,6 +210,7 @@ class SweepSettings:
     detector: str = "peak"
     ref_level_dbm: float | None = None
     attenuation_db: float | None = None
+    sweep_time_s: float | None = None
 
     def freq_axis_hz(self) -> np.ndarray:
         """f_i = start + i*(stop-start)/(N-1) (common practice for swept traces)."""
@@ -236,6 +243,7 @@ class Analyzer:
         self.identity: str | None = None
         self._applied: dict[str, object] = {}
         self._sweep_time_s: float | None = None
+        self.warnings: list[str] = []
 
     @property
     def address(self) -> str:
@@ -267,7 +275,7 @@ class Analyzer:
         """Refuse settings outside the profile's capabilities before sending anything."""
         p = self.profile
         problems = []
-        if not (p.freq_min_hz <= s.start_hz < s.stop_hz <= p.freq_max_hz):
+        if not (p.freq_min_hz <= s.start_hz <= s.stop_hz <= p.freq_max_hz):
             problems.append(f"frequency {units.format_hz(s.start_hz)}-{units.format_hz(s.stop_hz)} "
                             f"outside {units.format_hz(p.freq_min_hz)}-{units.format_hz(p.freq_max_hz)}")
         if not (p.min_points <= s.points <= p.max_points):
@@ -297,10 +305,16 @@ class Analyzer:
             "rbw_hz": s.rbw_hz, "vbw_hz": s.vbw_hz, "points": s.points,
             "detector": self.profile.detectors[s.detector],
             "ref_level_dbm": s.ref_level_dbm, "attenuation_db": s.attenuation_db,
+            "sweep_time_s": s.sweep_time_s,
         }
         if self._applied.get("stop_hz") is not None and s.stop_hz < float(self._applied.get("start_hz", 0.0)):
             wanted = {"start_hz": wanted.pop("start_hz"), **wanted}
         sent = []
+        if s.sweep_time_s is None and self._applied.get("sweep_time_s") is not None:
+            cmd = self.profile.commands["sweep_time_auto"]  # back to the coupled sweep time
+            self.transport.write(cmd)
+            sent.append(cmd)
+            self._applied["sweep_time_s"] = None
         for key, value in wanted.items():
             if value is None or self._applied.get(key) == value:
                 continue
@@ -326,6 +340,8 @@ class Analyzer:
         if reply.strip() != "1":
             raise InstrumentError(self.address, self.profile.commands["sweep_and_wait"],
                                   text=f"expected '1' from *OPC?, found {reply!r}")
+        # an overload or a hardware fault shows in the error queue: never store such a trace silently
+        self.check_errors("sweep")
 
     def fetch_trace(self, points: int) -> np.ndarray:
         """Read the last sweep as little-endian float32 dBm values."""
@@ -334,16 +350,28 @@ class Analyzer:
         return decode_float32(payload, big_endian=self.profile.big_endian, expected_points=points)
 
     def check_errors(self, context: str, max_reads: int = 32) -> None:
-        """Drain ``SYST:ERR?``; raise the first error with the instrument's code and text."""
+        """Drain ``SYST:ERR?``; raise the first error with the instrument's code and text.
+
+        Codes the profile lists in ``warning_codes`` (e.g. an input overload) are kept in
+        :attr:`warnings` instead of raised; the caller decides what to do with them.
+        """
         first = None
         for _ in range(max_reads):
             reply = self.transport.query(self.profile.commands["error_query"])
             code, text = _parse_error(reply)
             if code == 0:
                 break
+            if code in self.profile.warning_codes:
+                self.warnings.append(f"{code},{text!r} after {context}")
+                continue
             first = first or (code, text)
         if first:
             raise InstrumentError(self.address, context, code=first[0], text=first[1])
+
+    def take_warnings(self) -> list[str]:
+        """Warnings collected since the last call (and forget them)."""
+        out, self.warnings = self.warnings, []
+        return out
 
     def forget_state(self) -> None:
         """Forget what was applied (after a reconnect everything is sent again)."""
