@@ -112,8 +112,63 @@ def cmd_run(args) -> int:
         print(SAFETY_LINE, file=sys.stderr)
         _print_plan(prep)
         folder = execute_new_run(prep, out_root=args.out, plots=not args.no_plots)
+    _print_results(folder)
     print(f"run stored in {folder}")
     return 0
+
+
+ESTIMATE_LINE = ("This pre-scan is an estimate, not a compliance verdict: defer to the applicable standard, "
+                 "an accredited test house and local regulations.")
+
+
+def _print_results(folder: Path) -> None:
+    """The suspects and final readings of a run, as a table on the terminal (and a note)."""
+    from rich.console import Console
+    from rich.table import Table
+
+    from bench.store import open_run
+
+    run = open_run(folder)
+    try:
+        results = run.results()
+        warnings = [t for lvl, t in zip(run.events()["level"], run.events()["text"]) if lvl == "warning"]
+    finally:
+        run.close()
+    console = Console(width=None if sys.stdout.isatty() else 132)
+    # the screen shows what needs attention: suspects, ambient signals and the final readings
+    results = results[(results.status != "pass") | (results.step_label.isin(_final_labels(folder)))]
+    if not results.empty:
+        table = Table(title="results (levels corrected through the transducer chain)")
+        for col in ("step", "MHz", "level", "detector", "limit", "margin dB", "pol", "height m", "az deg", "status"):
+            table.add_column(col, justify="right" if col not in ("step", "detector", "pol", "status") else "left")
+        for _, r in results.iterrows():
+            table.add_row(r.step_label, f"{r.freq_hz / 1e6:.3f}", _num(r.level, 1), r.detector,
+                          _num(r.limit_level, 1), _num(r.margin_db, 1), str(r.polarization or ""),
+                          _num(r.height_m, 2), _num(r.azimuth_deg, 0), r.status)
+        console.print(table)
+    for w in warnings[:10]:
+        console.print(f"warning: {w}", markup=False)
+    if len(warnings) > 10:
+        console.print(f"... {len(warnings) - 10} more warnings in the run's events (report.html)")
+    print(ESTIMATE_LINE)
+
+
+def _final_labels(folder: Path) -> set[str]:
+    from bench.store import open_run
+
+    run = open_run(folder)
+    try:
+        return {s["label"] for s in run.manifest().get("steps", []) if s.get("kind") == "final"}
+    finally:
+        run.close()
+
+
+def _num(value, digits: int) -> str:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        return ""
+    return "" if v != v else f"{v:.{digits}f}"
 
 
 def cmd_resume(args) -> int:

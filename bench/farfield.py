@@ -131,12 +131,17 @@ def analyze_prescan(store, step, ctx: FarFieldContext, *, max_pass_rows: int = 1
     return pd.DataFrame(rows)
 
 
-def _narrow_segment(freq_hz: float, span_hz: float, rbw_hz: float, detector: str, points: int) -> Segment:
-    """A narrow span around a suspect (peak detector, coupled sweep time) to find it exactly."""
+def _narrow_segment(freq_hz: float, span_hz: float, rbw_hz: float, detector: str, points: int,
+                    sweep_time_s: float) -> Segment:
+    """A narrow span around a suspect to find its exact frequency.
+
+    The sweep is slowed to ``sweep_time_s`` so that every trace point dwells long enough to
+    catch an intermittent (burst) signal; a fast sweep would see a burst only by chance.
+    """
     span = max(span_hz, 10.0 * rbw_hz)
     return Segment(start_hz=freq_hz - span / 2, stop_hz=freq_hz + span / 2, points=points, rbw_hz=rbw_hz,
                    vbw_hz=3.0 * rbw_hz, detector=detector, ref_level_dbm=None, attenuation_db=None,
-                   trace_mode="clear-write", count=1, est_sweep_time_s=0.0)
+                   trace_mode="clear-write", count=1, est_sweep_time_s=sweep_time_s, sweep_time_s=sweep_time_s)
 
 
 def _zero_span_segment(freq_hz: float, rbw_hz: float, detector: str, points: int, dwell_s: float) -> Segment:
@@ -178,11 +183,14 @@ def run_finals(executor, action, step, prescan_step, sweep, ctx: FarFieldContext
         pol = s["polarization"] if isinstance(s["polarization"], str) else None
         height = _num(s["height_m"])
         azimuth = _num(s["azimuth_deg"])
-        peak_seg = _narrow_segment(f0, step.span_hz, sweep.rbw_hz, "peak", points)
-        best = _search(executor, action, peak_seg, f0, sweep.rbw_hz, pol, height, azimuth, step,
-                       mast_limits_m, turntable_limits_deg)
-        executor._set_pose(FarFieldPose(*best))
+        peak_seg = _narrow_segment(f0, step.span_hz, sweep.rbw_hz, "peak", points, step.dwell_s)
+        executor.set_pose(FarFieldPose(height, pol, azimuth))
         f_exact = _locate(executor, action, peak_seg, f0, sweep.rbw_hz)
+        # search in zero span with the dwell: a swept peak detector can miss a bursty signal
+        search_seg = _zero_span_segment(f_exact, sweep.rbw_hz, "peak", points, step.dwell_s)
+        best = _search(executor, action, search_seg, f_exact, sweep.rbw_hz, pol, height, azimuth, step,
+                       mast_limits_m, turntable_limits_deg)
+        executor.set_pose(FarFieldPose(*best))
         # the peak reading at the final pose first: peak >= quasi-peak >= average on one signal
         detectors = ("peak",) + tuple(d for d in step.detectors if d != "peak")
         for det in detectors:
@@ -232,7 +240,7 @@ def _search(executor, action, seg, f0, rbw_hz, pol, height, azimuth, step, mast_
 def _best_of(executor, action, seg, f0, rbw_hz, poses, key):
     best, best_level = key(poses[0]), -np.inf
     for pose in poses:
-        executor._set_pose(pose)
+        executor.set_pose(pose)
         level = _read_at(executor, action, seg, f0, rbw_hz)
         if level > best_level:
             best, best_level = key(pose), level

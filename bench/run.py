@@ -208,7 +208,7 @@ class Executor:
             self.dynamic(self, action)
             self.store.mark_done(action.index)
             return
-        self._set_pose(action.pose)
+        self.set_pose(action.pose)
         last = len(action.segments) - 1
         for i, seg in enumerate(action.segments):
             self.measure_segment(action, i, seg, completes_action=(i == last))
@@ -264,7 +264,7 @@ class Executor:
         except (TransportError, InstrumentError):
             pass
 
-    def _set_pose(self, pose) -> None:
+    def set_pose(self, pose) -> None:
         self.current_pose = pose
         if pose is None:
             return

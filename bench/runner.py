@@ -216,6 +216,9 @@ def _execute(prep, store: RunStore, plots: bool) -> None:
         progress.close()
         runlog.close()
     store.update_manifest(state="complete", instruments=executor.identities, faults_recovered=executor.faults)
+    results = store.results()
+    if not results.empty:
+        results.to_csv(store.folder / "results.csv", index=False)
     store.checkpoint()
     if plots:
         from bench.report import write_report
