@@ -34,7 +34,8 @@ MATCH_COLUMNS = ("change", "detector", "freq_before_hz", "freq_after_hz", "level
 # matched; common practice).
 _MATCH_REL = 1e-3
 # Peaks used for the summary: prominent enough to be an emission, not a noise wiggle.
-_SUMMARY_PROMINENCE_DB = 6.0
+_SUMMARY_PROMINENCE_DB = 15.0  # an emission stands 15 dB clear of the local floor: peak-detected noise
+#                                rarely does (Rayleigh tail), so noise spikes stay out of the summary (our choice)
 
 
 def _axis(freq_hz, level, name: str) -> tuple[np.ndarray, np.ndarray]:
@@ -229,20 +230,45 @@ def _check_units(label: str, before, after) -> None:
 
 
 def _peak_deltas(before, after, f, delta, rbw_hz: float) -> pd.DataFrame:
-    """Delta at the frequencies of emissions (peaks of either spectrum), for the summary."""
+    """Change of each emission (a peak of either spectrum standing clear of the floor), for the summary.
+
+    The change is the strongest reading within +-RBW after, minus the same before: comparing
+    single bins would compare noise with noise beside a line that moved by a fraction of a bin.
+    A line that vanished into the floor shows an improvement down to the floor (at least that much).
+    """
     found = []
     for spec in (before, after):
         p = find_peaks_hz(spec.freq_hz, spec.level, prominence_db=_SUMMARY_PROMINENCE_DB,
                           min_separation_hz=rbw_hz)
-        found.append(p["freq_hz"].to_numpy())
+        floor = _floor(spec.level)[p["index"].to_numpy(dtype=int)]
+        found.append(p["freq_hz"].to_numpy()[p["level"].to_numpy() - floor >= _SUMMARY_PROMINENCE_DB])
     freqs = np.unique(np.concatenate(found))
     if freqs.size == 0 or f.size == 0:
         return pd.DataFrame({"freq_hz": [], "delta_db": []})
-    idx = np.clip(np.searchsorted(f, freqs), 1, f.size - 1) if f.size > 1 else np.zeros(1, int)
-    idx = np.where(np.abs(f[idx - 1] - freqs) < np.abs(f[idx] - freqs), idx - 1, idx) \
-        if f.size > 1 else idx
-    table = pd.DataFrame({"freq_hz": f[idx], "delta_db": delta[idx]}).dropna()
+    rows = []
+    for fc in freqs:
+        b = _window_max(before, fc, rbw_hz)
+        a = _window_max(after, fc, rbw_hz)
+        if np.isfinite(a) and np.isfinite(b):
+            rows.append((fc, a - b))
+    table = pd.DataFrame(rows, columns=["freq_hz", "delta_db"])
     return table.drop_duplicates("freq_hz")
+
+
+def _floor(level: np.ndarray) -> np.ndarray:
+    """Local noise floor: running median over 2 % of the trace (at least 51 points)."""
+    from scipy.ndimage import median_filter
+
+    size = max(51, int(level.size * 0.02) | 1)
+    filled = np.where(np.isfinite(level), level, np.nanmedian(level))
+    return median_filter(filled, size=size, mode="nearest")
+
+
+def _window_max(spec, freq_hz: float, half_width_hz: float) -> float:
+    near = np.abs(spec.freq_hz - freq_hz) <= half_width_hz
+    values = spec.level[near]
+    values = values[np.isfinite(values)]
+    return float(values.max()) if values.size else float("nan")
 
 
 def _extremes(freq: np.ndarray, delta: np.ndarray, what: str) -> str:
