@@ -71,7 +71,11 @@ def prepare(sequence_path: Path, *, bench_path: Path | None, sim: bool, board: P
                                                  faults=faults or [])
         if stack is not None:
             stack.callback(simulator.stop)
-    plan = build_plan(sequence, bench)
+    try:
+        plan = build_plan(sequence, bench, sequence_dir=Path(sequence_path).parent)
+    except PlanError as exc:
+        # name the file the problem is in: the sequence, checked against this bench
+        raise type(exc)(f"{sequence_path} (on bench {bench_path}): {exc}") from None
     return Prepared(sequence, Path(sequence_path), bench, Path(bench_path), plan, simulator)
 
 
@@ -87,8 +91,13 @@ def dispatch(args) -> int:
 
 
 def _print_plan(prep: Prepared) -> None:
+    from bench.station import profiles_for
+
     for line in prep.plan.summary_lines():
         print(line)
+    ap = profiles_for(prep.bench)["analyzer"]
+    print(f"analyzer input: profile {ap.name} assumes damage above {ap.damage_level_dbm:+g} dBm or any DC; "
+          "use an attenuator, a DC block and a limiter")
     for w in tuple(prep.sequence.warnings) + tuple(prep.bench.warnings):
         print(f"warning: {w}")
 
@@ -110,6 +119,10 @@ def cmd_run(args) -> int:
         prep = prepare(args.sequence, bench_path=args.bench, sim=args.sim, board=args.board,
                        seed=args.seed, realtime=args.realtime, faults=args.fault, stack=stack)
         print(SAFETY_LINE, file=sys.stderr)
+        if prep.sim is not None:
+            a = prep.sim.addresses
+            print(f"simulated bench: analyzer {a['analyzer']}, stage {a['stage']} (also {a['stage_pty']}), "
+                  f"mast and turntable {a['mast']}, supply {a['supply']}", file=sys.stderr)
         _print_plan(prep)
         folder = execute_new_run(prep, out_root=args.out, plots=not args.no_plots)
     _print_results(folder)

@@ -636,8 +636,9 @@ def _grid_warnings(state: _State, index: int, step: GridStep, probe: ProbeCaps,
                               f"({orientations[0]:g} deg); a loop only sees the field through "
                               f"it, so scan 0 and 90 deg (common practice)")
     if len(orientations) > 1 and not stage.rotary_axis:
-        state.warnings.append(f"{_where(index, step)}: the stage has no rotary axis; the "
-                              f"operator turns the probe between orientations")
+        raise PlanError(f"{_where(index, step)}: {len(orientations)} probe orientations, but the stage "
+                        "has no rotary axis (bench [stage] rotary_axis = false): give the step one "
+                        "orientation and run the other as a second sequence after turning the probe by hand")
 
 
 def _grid_poses(step: GridStep, stage: StageCaps, probe: ProbeCaps,

@@ -275,7 +275,7 @@ class Executor:
             if pose.tool != self._tool:
                 st.stage.select_tool(int(pose.tool))
                 self._tool = pose.tool
-            if pose.rotation_deg != self._rotation:
+            if pose.rotation_deg != self._rotation and st.stage.limits.rotary_axis:
                 # turn the probe only at the travel height: never rotate it close to the board
                 st.stage.move_to(float(pose.x_m), float(pose.y_m), float(st.stage.limits.safe_z_m))
                 st.stage.rotate_to(float(pose.rotation_deg))

@@ -51,8 +51,19 @@ def _chain_files(bench, step) -> tuple[list[tuple[str, Path]], str, dict]:
 
 def build_manifest(prep, *, simulated: bool) -> tuple[dict, list[tuple[Path, str]]]:
     """Manifest dict and the (source, name in tables/) files to copy into the run folder."""
+    from bench.station import resolve_limit
+
     copies: dict[Path, str] = {}
     steps = []
+    seq_dir = Path(prep.sequence_path).parent
+
+    def limit_entry(name: str) -> str:
+        resolved = resolve_limit(name, seq_dir)
+        if resolved == name and not Path(name).suffix:
+            return name  # built-in limit
+        src = Path(resolved)
+        return "tables/" + copies.setdefault(src, f"{len(copies):02d}-{src.name}")
+
     for step in prep.sequence.steps:
         files, unit, extra = _chain_files(prep.bench, step)
         chain = []
@@ -60,15 +71,17 @@ def build_manifest(prep, *, simulated: bool) -> tuple[dict, list[tuple[Path, str
             name = copies.setdefault(src, f"{len(copies):02d}-{src.name}")
             chain.append({"role": role, "file": f"tables/{name}"})
         entry = {"label": step.label, "kind": step.kind, "unit": unit, "chain": chain, **extra}
-        for key in ("sweep", "limit", "ambient", "of"):
+        for key in ("sweep", "ambient", "of"):
             value = getattr(step, key, None)
             if value is not None:
                 entry[key] = value
+        if getattr(step, "limit", None) is not None:
+            entry["limit"] = limit_entry(step.limit)
         if step.kind == "prescan":
             entry["margin_db"] = step.margin_db
         if step.kind == "final":
             prescan = prep.sequence.step(step.of)
-            entry["limit"] = prescan.limit
+            entry["limit"] = limit_entry(prescan.limit)
             entry["sweep"] = prescan.sweep
         steps.append(entry)
     manifest = {
@@ -152,9 +165,10 @@ def _step_hook(prep, folder: Path, plots: bool):
 
 def _farfield_context(prep, store, limit_name):
     from bench.farfield import FarFieldContext, limit_for_site
+    from bench.station import resolve_limit
 
     distance = prep.bench.site.distance_m if prep.bench.site is not None else 3.0
-    limit, notes = limit_for_site(limit_name, distance)
+    limit, notes = limit_for_site(resolve_limit(limit_name, Path(prep.sequence_path).parent), distance)
     for n in notes:
         store.log_event("info", n)
         log.info(n)
@@ -206,7 +220,11 @@ def _execute(prep, store: RunStore, plots: bool) -> None:
     runlog = _RunLog(store.folder)
     try:
         executor.run()
-    except RunInterrupted as exc:
+    except BenchError as exc:
+        if not isinstance(exc, RunInterrupted):
+            # the run cannot go on (e.g. the instrument refused a setting): keep what was measured
+            store.update_manifest(state="interrupted", interrupted_reason=str(exc))
+            raise
         store.update_manifest(state="interrupted", interrupted_reason=str(exc))
         from bench.app import RunInterruptedExit
 

@@ -139,7 +139,7 @@ def start_simulated_bench(bench, *, board: Path | None = None, seed: int = 1, re
         turntable_travel_deg=bench.turntable.azimuth_limits_deg if bench.turntable is not None else (0.0, 360.0),
     )
     addresses = sim.start()
-    log.info("simulated bench: analyzer %s, stage %s, mast/turntable %s, supply %s",
+    log.debug("simulated bench: analyzer %s, stage %s, mast/turntable %s, supply %s",
              addresses["analyzer"], addresses["stage"], addresses["mast"], addresses["supply"])
     update = {"analyzer": bench.analyzer.model_copy(update={"address": addresses["analyzer"]})}
     for role in ("stage", "mast", "turntable", "supply"):

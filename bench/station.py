@@ -10,7 +10,7 @@ import logging
 from pathlib import Path
 
 from bench.drivers.analyzer import Analyzer, load_analyzer_profile
-from bench.errors import BenchError, ConfigError
+from bench.errors import BenchError, ConfigError, PlanError
 from bench.planner import AnalyzerCaps, bench_caps, make_plan
 from bench.run import Station
 from bench.transports import open_transport
@@ -71,9 +71,94 @@ def capabilities(bench, profiles: dict | None = None):
     return bench_caps(bench, analyzer=analyzer, **kwargs)
 
 
-def build_plan(sequence, bench):
-    """Check a sequence against a bench and expand it into actions (no I/O)."""
-    return make_plan(sequence, capabilities(bench))
+def build_plan(sequence, bench, *, sequence_dir: Path | None = None):
+    """Check a sequence against a bench and expand it into actions (no I/O).
+
+    Besides the planner's own checks (stage travel, mast and turntable limits, probes), every
+    problem that would otherwise stop a run half-way is caught here, before anything moves:
+    sweep settings the analyzer cannot do, limit lines that cannot be loaded, transducer tables
+    that do not cover a sweep, an ambient capture with no way to switch the board off.
+    """
+    profiles = profiles_for(bench)
+    plan = make_plan(sequence, capabilities(bench, profiles))
+    preflight(plan, sequence, bench, profiles, sequence_dir=sequence_dir)
+    return plan
+
+
+def resolve_limit(name: str, sequence_dir: Path | None) -> str:
+    """A built-in limit name as is; a limit file path made absolute against the sequence's folder."""
+    if name.endswith(".toml") or "/" in name or "\\" in name:
+        path = Path(name)
+        if not path.is_absolute() and sequence_dir is not None:
+            path = sequence_dir / path
+        return str(path.resolve())
+    return name
+
+
+def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | None = None) -> None:
+    """Refuse, before anything runs, what would fail mid-run (see :func:`build_plan`)."""
+    from bench.analysis.limits import load_limit
+    from bench.analysis.transducers import load_table
+    from bench.drivers.analyzer import Analyzer, SweepSettings
+
+    probe = Analyzer(transport=_NoTransport(bench.analyzer.address), profile=profiles["analyzer"])
+    for action in plan.actions:
+        for seg in action.segments:
+            try:
+                probe.validate(SweepSettings(start_hz=seg.start_hz, stop_hz=seg.stop_hz, rbw_hz=seg.rbw_hz,
+                                             vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
+                                             attenuation_db=seg.attenuation_db))
+            except PlanError as exc:
+                raise PlanError(f"step '{action.step_label}': {exc}") from None
+    for i, step in enumerate(sequence.steps):
+        limit = getattr(step, "limit", None)
+        if limit is not None:
+            try:
+                load_limit(resolve_limit(limit, sequence_dir))
+            except (ConfigError, BenchError) as exc:
+                raise PlanError(f"steps[{i}] '{step.label}': limit {limit!r} cannot be used: {exc}") from None
+        if step.kind == "ambient" and getattr(bench, "supply", None) is None:
+            raise PlanError(f"steps[{i}] '{step.label}': an ambient capture needs the board switched off, and "
+                            "the bench file has no [supply] to do it unattended")
+    for label, files in _tables_by_step(sequence, bench).items():
+        span = _step_span(plan, label)
+        if span is None:
+            continue
+        for role, path in files:
+            try:
+                load_table(path, role=role).check_covers(list(span))
+            except (ConfigError, BenchError) as exc:
+                raise PlanError(f"step '{label}': {exc}") from None
+
+
+def _tables_by_step(sequence, bench) -> dict:
+    out = {}
+    for step in sequence.steps:
+        if step.kind == "grid":
+            probe = bench.probes.get(step.probe)
+            if probe is not None:
+                out[step.label] = [("probe_factor", probe.factor)]
+        elif bench.transducers is not None:
+            files = [("antenna_factor", bench.transducers.antenna)]
+            files += [("cable_loss", c) for c in bench.transducers.cables]
+            if bench.transducers.preamp is not None:
+                files.append(("preamp_gain", bench.transducers.preamp))
+            out[step.label] = files
+    return out
+
+
+def _step_span(plan, label: str):
+    segs = [seg for a in plan.actions if a.step_label == label for seg in a.segments]
+    if not segs:
+        return None
+    return min(s.start_hz for s in segs), max(s.stop_hz for s in segs)
+
+
+class _NoTransport:
+    """Stands in for a connection where only :meth:`Analyzer.validate` is used (no I/O)."""
+
+    def __init__(self, address: str) -> None:
+        self.address = address
 
 
 def stage_limits(section):

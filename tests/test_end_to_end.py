@@ -321,3 +321,57 @@ def test_far_field_prescan_suspects_ambient_and_finals(tmp_path, capsys):
     # line there (Table A.4), so the average reading is information only
     assert set(fin[fin.detector == "cispr-average"].status) == {"info"}
     assert set(fin[fin.detector == "quasi-peak"].status) <= {"pass", "fail"}
+
+
+@pytest.mark.parametrize(
+    ("change", "fragment"),
+    [
+        (('limit = "cispr32-class-b-3m"', 'limit = "cispr99-class-z"'), "limit 'cispr99-class-z' cannot be used"),
+        (('start = "30 MHz"', 'start = "1 kHz"'), "outside 9 kHz-7 GHz"),
+        (('limit = "cispr32-class-b-3m"', 'limit = "my-limits/none.toml"'), "cannot be used"),
+    ],
+)
+def test_check_catches_what_would_fail_mid_run(tmp_path, capsys, change, fragment):
+    seq = _write(tmp_path / "quick.toml", QUICK.replace(*change))
+    code = main(["check", str(seq), "--sim"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and fragment in err[0], err
+
+
+def _bench_variant(tmp_path: Path, edit) -> Path:
+    text = (DEMO / "demo-bench.toml").read_text(encoding="utf-8")
+    text = text.replace('"tables/', f'"{DEMO}/tables/')
+    path = tmp_path / "bench.toml"
+    path.write_text(edit(text), encoding="utf-8")
+    return path
+
+
+def test_ambient_without_supply_is_refused_before_running(tmp_path, capsys):
+    bench = _bench_variant(tmp_path, lambda t: t.split("[supply]")[0])
+    seq = _write(tmp_path / "quick.toml", QUICK)
+    assert main(["check", str(seq), "--bench", str(bench)]) == 2
+    assert "no [supply]" in capsys.readouterr().err
+
+
+def test_two_orientations_need_a_rotary_axis(tmp_path, capsys):
+    bench = _bench_variant(tmp_path, lambda t: t.replace("rotary_axis = true", "rotary_axis = false"))
+    seq = _write(tmp_path / "grid.toml", """
+schema = 1
+name = "g"
+[sweeps.nf]
+start = "30 MHz"
+stop = "60 MHz"
+rbw = "120 kHz"
+points = 501
+[[steps]]
+kind = "grid"
+label = "hloop"
+sweep = "nf"
+probe = "hloop-10mm"
+area = { x = ["0 mm", "20 mm"], y = ["0 mm", "20 mm"] }
+step_size = "10 mm"
+height = "3 mm"
+""")
+    assert main(["check", str(seq), "--bench", str(bench)]) == 2
+    assert "no rotary axis" in capsys.readouterr().err

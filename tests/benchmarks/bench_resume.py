@@ -110,6 +110,7 @@ class KillFigures:
     first_new_trace_s: float
     resume_exit: int
     resume_peak_rss_mb: float
+    same_actions: bool
 
 
 def _run_dir_of(out: Path, deadline: float) -> Path:
@@ -136,6 +137,7 @@ def _wait_for_traces(proc: subprocess.Popen, run_dir: Path, target: int, deadlin
 def kill_and_resume(folder: Path, case: str, seq: Path, kill_at: int) -> KillFigures:
     """Start ``bench run SEQ``, SIGKILL it after ``kill_at`` traces, resume it, read the store."""
     planned = planned_traces(seq)
+    planned_actions = planned_action_indices(seq)
     out = folder / f"runs-kill-{case}"
     log = open(folder / f"kill-{case}.log", "wb")
     proc = subprocess.Popen(bench_command(["run", str(seq), "--sim", "--no-plots", "--out", str(out)]),
@@ -157,11 +159,19 @@ def kill_and_resume(folder: Path, case: str, seq: Path, kill_at: int) -> KillFig
     after = read_run(run_dir)
     db = sqlite3.connect(f"file:{run_dir / 'data.sqlite'}?mode=ro", uri=True)
     first_new = db.execute("SELECT MIN(t_wall) FROM traces WHERE t_wall > ?", (t_start,)).fetchone()[0]
+    stored_actions = {r[0] for r in db.execute("SELECT DISTINCT action_index FROM traces")}
     db.close()
     return KillFigures(case, planned, before.traces, before.actions_done, after.traces,
                        after.duplicate_actions, after.distinct_actions, after.manifest.get("state", "-"),
                        child.wall_s, (first_new - t_start) if first_new else float("nan"),
-                       child.returncode, child.peak_rss_mb)
+                       child.returncode, child.peak_rss_mb, stored_actions == planned_actions)
+
+
+def planned_action_indices(seq: Path) -> set[int]:
+    """Indices of the plan's actions (each stores one trace per segment)."""
+    from bench.app import demo_bench_path, prepare
+
+    return {a.index for a in prepare(seq, bench_path=demo_bench_path(), sim=False).plan.actions}
 
 
 def print_kill_table(rows: list[KillFigures]) -> None:
@@ -170,7 +180,8 @@ def print_kill_table(rows: list[KillFigures]) -> None:
     print(head)
     print("-" * len(head))
     for r in rows:
-        match = r.after_resume == r.planned and r.duplicates == 0 and r.distinct_actions == r.planned
+        match = (r.after_resume == r.planned and r.duplicates == 0 and r.distinct_actions == r.planned
+                 and r.same_actions and r.resume_exit == 0)
         print(f"{r.case:22s} {r.planned:7d} {r.before_kill:7d} {r.done_before_kill:5d} {r.after_resume:6d} "
               f"{r.duplicates:3d} {r.state:>9s} {r.resume_wall_s:8.1f} {r.first_new_trace_s:9.2f} "
               f"{'yes' if match else 'NO':>5s}", flush=True)
@@ -191,7 +202,8 @@ def main(argv: list[str] | None = None) -> int:
         cases = FAULT_CASES[:2] if args.quick else FAULT_CASES
         print_fault_table([fault_case(folder, seq, faults, planned) for faults in cases])
         print("\npart 2: SIGKILL of a running 'bench run', then 'bench resume RUN --sim' "
-              "(at kill = traces stored when killed; done = actions marked done)\n")
+              "(at kill = traces stored when killed; done = actions marked done;\n"
+              "match = final count equals the plan, every planned action stored once, resume exit code 0)\n")
         kills = [kill_and_resume(folder, "sweeps 600", sweep_sequence(folder, 600, 1), 250)]
         if not args.quick:
             kills.append(kill_and_resume(folder, "max-hold 60 x 10", sweep_sequence(folder, 60, 10), 25))
