@@ -9,7 +9,6 @@ from __future__ import annotations
 import hashlib
 import logging
 import sys
-import time
 from contextlib import ExitStack
 from importlib import resources
 from pathlib import Path

@@ -23,7 +23,7 @@ import numpy as np
 
 from bench import units
 from bench.drivers.analyzer import SweepSettings
-from bench.errors import BenchError, InstrumentError, PlanError, StoreError, TransportError
+from bench.errors import BenchError, InstrumentError, PlanError, TransportError
 from bench.store import RunStore, TraceMeta
 
 __all__ = ["Station", "Executor", "RetryPolicy", "RunInterrupted", "combine_sweeps"]

@@ -16,7 +16,7 @@ from contextlib import ExitStack
 from pathlib import Path
 
 from bench import __version__
-from bench.errors import AnalysisError, BenchError, ConfigError, StoreError
+from bench.errors import BenchError, ConfigError
 from bench.progress import Progress
 from bench.run import Executor, RetryPolicy, RunInterrupted
 from bench.store import RunStore, create_run, open_run

@@ -319,3 +319,29 @@ class LineConversation:
             meaning = self.handshake.error_codes[code]
             text = f"{text}: {meaning}" if text else meaning
         return InstrumentError(self.address, command, code, text or match.group(0))
+
+
+class LineDeviceProfile:
+    """What every line-protocol profile (stage, mast, turntable) shares: loading and port settings.
+
+    Subclasses are frozen dataclasses with ``handshake``, ``open_timeout_s``, ``read_termination``,
+    ``write_termination`` and ``baudrate`` fields and a ``from_data(data, origin)`` classmethod.
+    """
+
+    @classmethod
+    def load(cls, name_or_path, *, base_dir=None):
+        """Read a built-in profile by name or a profile file by path."""
+        from bench.drivers.profile import load_profile_data
+
+        data, origin = load_profile_data(name_or_path, base_dir=base_dir)
+        return cls.from_data(data, origin)
+
+    def transport_settings(self, baudrate: int | None = None):
+        """Settings to open the device's port (``baudrate`` from the bench file wins)."""
+        from bench.transports import TransportSettings
+
+        return TransportSettings(
+            timeout_s=self.handshake.timeout_s, open_timeout_s=self.open_timeout_s,
+            read_termination=self.read_termination, write_termination=self.write_termination,
+            baudrate=baudrate or self.baudrate,
+        )

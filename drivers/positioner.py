@@ -14,13 +14,11 @@ import math
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
-from bench.drivers.lineproto import Handshake, LineConversation, compile_pattern
-from bench.drivers.profile import load_profile_data
+from bench.drivers.lineproto import Handshake, LineConversation, LineDeviceProfile, compile_pattern
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
-from bench.transports import TransportSettings, open_transport
+from bench.transports import open_transport
 from bench.units import parse
 
 __all__ = ["AxisDialect", "Mast", "MastLimits", "PositionerProfile", "Turntable", "TurntableLimits"]
@@ -126,7 +124,7 @@ class AxisDialect:
 
 
 @dataclass(frozen=True)
-class PositionerProfile:
+class PositionerProfile(LineDeviceProfile):
     """A line-positioner dialect (``kind = "line-positioner"``)."""
 
     name: str
@@ -152,11 +150,6 @@ class PositionerProfile:
     write_termination: str = "\n"
     open_timeout_s: float = 5.0
 
-    @classmethod
-    def load(cls, name_or_path: str | Path, *, base_dir: Path | None = None) -> "PositionerProfile":
-        """Read a built-in profile by name (``"line-positioner"``) or a profile file by path."""
-        data, origin = load_profile_data(name_or_path, base_dir=base_dir)
-        return cls.from_data(data, origin)
 
     @classmethod
     def from_data(cls, data: dict[str, Any], origin: str) -> "PositionerProfile":
@@ -195,13 +188,6 @@ class PositionerProfile:
             open_timeout_s=parse(conn.get("open_timeout", "5 s"), "time"),
         )
 
-    def transport_settings(self, baudrate: int | None = None) -> TransportSettings:
-        """Settings to open the controller's port (``baudrate`` from the bench file wins)."""
-        return TransportSettings(
-            timeout_s=self.handshake.timeout_s, open_timeout_s=self.open_timeout_s,
-            read_termination=self.read_termination, write_termination=self.write_termination,
-            baudrate=baudrate or self.baudrate,
-        )
 
 
 # -------------------------------------------------------------------------------- drivers

@@ -21,13 +21,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
-from bench.drivers.lineproto import Handshake, LineConversation, compile_pattern
-from bench.drivers.profile import load_profile_data
+from bench.drivers.lineproto import Handshake, LineConversation, LineDeviceProfile, compile_pattern
 from bench.errors import ConfigError, InstrumentError, PlanError, SafetyLimitError
-from bench.transports import TransportSettings, open_transport
+from bench.transports import open_transport
 from bench.units import parse
 
 __all__ = ["StageLimits", "StageProfile", "Stage", "plan_path"]
@@ -110,7 +108,7 @@ class StageLimits:
 
 
 @dataclass(frozen=True)
-class StageProfile:
+class StageProfile(LineDeviceProfile):
     """A G-code dialect, read from a ``kind = "gcode-stage"`` profile.
 
     Attributes
@@ -165,11 +163,6 @@ class StageProfile:
     write_termination: str = "\n"
     open_timeout_s: float = 5.0
 
-    @classmethod
-    def load(cls, name_or_path: str | Path, *, base_dir: Path | None = None) -> "StageProfile":
-        """Read a built-in profile by name (``"gcode-cartesian"``) or a profile file by path."""
-        data, origin = load_profile_data(name_or_path, base_dir=base_dir)
-        return cls.from_data(data, origin)
 
     @classmethod
     def from_data(cls, data: dict[str, Any], origin: str) -> "StageProfile":
@@ -209,13 +202,6 @@ class StageProfile:
             open_timeout_s=parse(conn.get("open_timeout", "5 s"), "time"),
         )
 
-    def transport_settings(self, baudrate: int | None = None) -> TransportSettings:
-        """Settings to open the stage's port (``baudrate`` from the bench file wins)."""
-        return TransportSettings(
-            timeout_s=self.handshake.timeout_s, open_timeout_s=self.open_timeout_s,
-            read_termination=self.read_termination, write_termination=self.write_termination,
-            baudrate=baudrate or self.baudrate,
-        )
 
 
 # ------------------------------------------------------------------------------ path plan

@@ -3,7 +3,6 @@
 Expected spellings are the SCPI-1999 / IEEE 488.2 forms listed in the reference sheet §9.
 """
 
-import struct
 
 import numpy as np
 import pytest

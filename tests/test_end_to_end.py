@@ -7,7 +7,6 @@ socket:// and a pseudo-terminal); nothing here patches a driver.
 from __future__ import annotations
 
 import dataclasses
-import sqlite3
 import tomllib
 from importlib import resources
 from pathlib import Path
@@ -16,7 +15,6 @@ import numpy as np
 import pytest
 import tomli_w
 
-from bench import units
 from bench.cli import main
 from bench.drivers.analyzer import Analyzer, SweepSettings, load_analyzer_profile
 from bench.simbench import SimulatedBench
