@@ -143,11 +143,13 @@ class Executor:
         actions = list(self.plan.actions)
         if self.progress is not None and done:
             self.progress.advance("resumed", n=len([a for a in actions if a.index in done]))
+        first = next((a for a in actions if a.index not in done), None)
+        if first is not None:
+            self.store.discard_partial(first.index)  # the action in flight when a run was killed
         try:
             for pos, action in enumerate(actions):
                 if action.index in done:
                     continue
-                self.store.discard_partial(action.index)
                 t0 = time.monotonic()
                 self._with_retries(action)
                 if self.progress is not None:

@@ -147,14 +147,14 @@ def _needs(plan) -> set[str]:
 
 
 def _step_hook(prep, folder: Path, plots: bool):
-    """After each step: far-field analysis, then the step's plot."""
-    from bench.farfield import analyze_prescan
-
+    """After each step: far-field analysis of a prescan."""
     seq = prep.sequence
 
     def hook(executor, action) -> None:
         step = seq.step(action.step_label)
         if step.kind == "prescan":
+            from bench.farfield import analyze_prescan  # scipy.signal only when a prescan needs it
+
             ctx = _farfield_context(prep, executor.store, step.limit)
             table = analyze_prescan(executor.store, step, ctx)
             counts = table["status"].value_counts().to_dict() if len(table) else {}

@@ -18,6 +18,7 @@ are applied on the way out (analysis), with the chain that produced them named i
 
 from __future__ import annotations
 
+import copy
 import os
 import sqlite3
 import time
@@ -56,6 +57,7 @@ CREATE TABLE IF NOT EXISTS traces (
     data BLOB NOT NULL
 );
 CREATE INDEX IF NOT EXISTS traces_step ON traces(step_label, segment);
+CREATE INDEX IF NOT EXISTS traces_action ON traces(action_index);
 CREATE TABLE IF NOT EXISTS actions_done (
     action_index INTEGER PRIMARY KEY,
     t_wall REAL NOT NULL
@@ -151,6 +153,7 @@ class RunStore:
     def __init__(self, folder: Path, *, readonly: bool = False) -> None:
         self.folder = Path(folder)
         self.readonly = readonly
+        self._manifest_cache: tuple[int, dict] | None = None
         db = self.folder / "data.sqlite"
         if not (self.folder / "manifest.toml").is_file():
             raise StoreError(f"{self.folder}: not a run folder (no manifest.toml)")
@@ -171,15 +174,21 @@ class RunStore:
         return self.folder / "manifest.toml"
 
     def manifest(self) -> dict:
+        """The parsed manifest (re-read only when the file changed on disk)."""
         try:
-            return tomllib.loads(self.manifest_path.read_text(encoding="utf-8"))
+            stamp = self.manifest_path.stat().st_mtime_ns
+            if self._manifest_cache is None or self._manifest_cache[0] != stamp:
+                data = tomllib.loads(self.manifest_path.read_text(encoding="utf-8"))
+                self._manifest_cache = (stamp, data)
         except (OSError, tomllib.TOMLDecodeError) as exc:
             raise StoreError(f"{self.manifest_path}: unreadable manifest: {exc}") from exc
+        return copy.deepcopy(self._manifest_cache[1])
 
     def update_manifest(self, **changes) -> dict:
         data = self.manifest()
         data.update(changes)
         write_manifest_atomic(self.manifest_path, data)
+        self._manifest_cache = None
         return data
 
     # ------------------------------------------------------------------ writing

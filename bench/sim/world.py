@@ -38,6 +38,8 @@ their powers.
 
 from __future__ import annotations
 
+import threading
+
 import math
 from dataclasses import dataclass
 
@@ -95,6 +97,11 @@ class World:
         self._board = board
         self._seed = int(seed)
         self._scale = {}
+        # The lines depend only on the pose and the band: repeated sweeps at one pose (max-hold,
+        # several segments, final readings) reuse them. The receiver draws new noise every sweep.
+        self._last_key = None
+        self._last_lines: list[Line] = []
+        self._cache_lock = threading.Lock()
         for index, emitter in enumerate(board.emitters):
             rng = np.random.default_rng([self._seed, index])
             offset_ppm = rng.uniform(-1.0, 1.0) * emitter.tolerance_ppm
@@ -155,6 +162,17 @@ class World:
             probe_m = tuple(state.probe_m)
             rotation_deg = state.probe_rotation_deg
             mast_m, pol, az_deg = state.mast_height_m, state.polarization, state.azimuth_deg
+        key = (tool, powered, probe_m, rotation_deg, mast_m, pol, az_deg, f_lo_hz, f_hi_hz)
+        with self._cache_lock:
+            if key == self._last_key:
+                return list(self._last_lines)
+        out = self._compute_lines(key)
+        with self._cache_lock:
+            self._last_key, self._last_lines = key, out
+        return list(out)
+
+    def _compute_lines(self, key) -> list[Line]:
+        tool, powered, probe_m, rotation_deg, mast_m, pol, az_deg, f_lo_hz, f_hi_hz = key
         if tool == 0:
             spectra = self._spectra(f_lo_hz, f_hi_hz) if powered else []
             out = self._far_field_lines(spectra, mast_m, pol, az_deg)
