@@ -26,7 +26,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from bench.sim.clock import VirtualClock
-from bench.sim.gcode import PtyLineServer, TcpLineServer
+from bench.sim.lineserver import LineEngine, PtyLineServer, TcpLineServer
 from bench.sim.state import SimState
 
 __all__ = ["AxisMotion", "PositionerFaults", "SimPositioner"]
@@ -65,7 +65,7 @@ class _Refused(Exception):
     pass
 
 
-class SimPositioner:
+class SimPositioner(LineEngine):
     """Mast and/or turntable controller on the shared simulated bench.
 
     Parameters
@@ -126,22 +126,11 @@ class SimPositioner:
 
     # ------------------------------------------------------------------------- server side
 
-    def banner_lines(self) -> list[str]:
-        """Lines sent when a client connects."""
-        return [self.banner] if self.banner else []
-
-    def count_bytes(self, n: int) -> None:
-        """Account for ``n`` bytes received from a client."""
-        with self._lock:
-            self.bytes_received += n
-
     def handle(self, line: str, emit: Callable[[str], None]) -> None:
         """Act on one received line; reply lines go to ``emit``."""
         with self._lock:
-            self.received.append(line)
-            limit = self.faults.silent_after_commands
-            if limit is not None and len(self.received) > limit:
-                return
+            if not self._record(line):
+                return  # hung controller: no action, no reply
             self._catch_up()
             try:
                 for reply in self._dispatch(line.strip().upper()):
