@@ -219,10 +219,24 @@ def cmd_export(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from bench.report import write_report
+    from bench import units
+    from bench.report import MapViews, write_report
     from bench.store import open_run
 
-    path = write_report(open_run(args.run))
+    def freq(text: str, option: str) -> float:
+        try:
+            return units.parse(text, "frequency")
+        except ConfigError as exc:
+            raise ConfigError(exc.message, key=option) from None
+
+    if args.map_peaks < 0:
+        raise ConfigError(f"expected a count >= 0, found {args.map_peaks}", key="--map-peaks")
+    bands = tuple((freq(lo, "--map-band"), freq(hi, "--map-band")) for lo, hi in args.map_band)
+    if any(lo >= hi for lo, hi in bands):
+        raise ConfigError("expected LOW < HIGH", key="--map-band")
+    views = MapViews(peaks=args.map_peaks, freqs_hz=tuple(freq(f, "--map-at") for f in args.map_at),
+                     bands_hz=bands)
+    path = write_report(open_run(args.run), views)
     print(path)
     return 0
 

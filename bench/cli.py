@@ -65,6 +65,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = sub.add_parser("report", help="write the HTML report and plots of a run")
     sp.add_argument("run", type=Path)
+    sp.add_argument("--map-at", action="append", default=[], metavar="FREQ",
+                    help='near-field map at a frequency, e.g. "48 MHz" (repeatable)')
+    sp.add_argument("--map-band", action="append", nargs=2, default=[], metavar=("LOW", "HIGH"),
+                    help='near-field map of the maximum over a band, e.g. "100 MHz" "200 MHz" (repeatable)')
+    sp.add_argument("--map-peaks", type=int, default=3, metavar="N",
+                    help="near-field maps at the N strongest flagged peaks (default 3)")
 
     sp = sub.add_parser("compare", help="compare two runs (before and after a fix)")
     sp.add_argument("before", type=Path)

@@ -8,6 +8,8 @@ notes, events) is HTML-escaped.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import base64
 import html
 import re
@@ -174,9 +176,10 @@ def _warnings_html(warnings: list[str]) -> str:
 class _StepWriter:
     """Renders one step's section, collecting PNGs in ``plots/``."""
 
-    def __init__(self, run, info: dict) -> None:
+    def __init__(self, run, info: dict, views: "MapViews | None" = None) -> None:
         self.run = run
         self.info = info
+        self.views = views or MapViews()
         self.label = str(info.get("label"))
         self.kind = str(info.get("kind", ""))
         self.plots_dir = Path(run.folder) / "plots"
@@ -274,9 +277,15 @@ class _StepWriter:
         if photo_path is not None and not photo_path.is_file():
             self.warnings.append(f"board photo {photo} not found in the run folder")
             photo_path = None
-        views = [("map", {})]
+        views = [("map", {})]  # maximum over the whole span
         if spots is not None and len(spots):
-            views.append(("map-top", {"freq_hz": float(spots["freq_hz"].iloc[0])}))
+            # one map per flagged peak, strongest first (as many as asked for)
+            for rank, freq in enumerate(spots["freq_hz"].head(self.views.peaks), start=1):
+                views.append((f"map-peak{rank}", {"freq_hz": float(freq)}))
+        for freq in self.views.freqs_hz:
+            views.append((f"map-{freq / 1e6:.6g}MHz", {"freq_hz": float(freq)}))
+        for lo, hi in self.views.bands_hz:
+            views.append((f"map-{lo / 1e6:.6g}-{hi / 1e6:.6g}MHz", {"band_hz": (float(lo), float(hi))}))
         for suffix, kwargs in views:
             gm = self._try("map", lambda kw=kwargs: maps_mod.grid_maps(self.run, self.label, **kw))
             if gm is None:
@@ -320,13 +329,34 @@ def page(title: str, body: str) -> str:
             f"<body>{body}</body></html>\n")
 
 
-def write_report(run) -> Path:
+@dataclass(frozen=True)
+class MapViews:
+    """Which near-field maps a report draws besides the maximum over the whole span.
+
+    Attributes
+    ----------
+    peaks : int
+        One map at each of the strongest flagged peaks (hot-spot frequencies), up to this many.
+    freqs_hz : tuple of float
+        Maps at these frequencies (nearest trace bin).
+    bands_hz : tuple of (float, float)
+        Maps of the maximum over these bands.
+    """
+
+    peaks: int = 3
+    freqs_hz: tuple = ()
+    bands_hz: tuple = ()
+
+
+def write_report(run, views: MapViews | None = None) -> Path:
     """Write ``report.html`` (self-contained) and the PNGs in ``plots/`` of a run folder.
 
     Parameters
     ----------
     run : bench.store.RunStore
         Open run folder (read-only is enough).
+    views : MapViews, optional
+        Extra near-field maps (default: the three strongest flagged peaks).
 
     Returns
     -------
@@ -344,7 +374,7 @@ def write_report(run) -> Path:
                      "steps after the interruption have no data.</p>")
     parts += [_safety(), _plan(manifest)]
     for info in manifest.get("steps", []):
-        parts.append(_StepWriter(run, info).render())
+        parts.append(_StepWriter(run, info, views).render())
     parts.append(_events(run))
     parts.append(f'<div class="notice">{esc(DISCLAIMER)}</div>')
     out = Path(run.folder) / "report.html"

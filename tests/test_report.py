@@ -154,3 +154,14 @@ def test_corrected_ambient_and_limit_feed_the_plot(report, tmp_path):
     out = spectrum_png(tmp_path / "big.png", freq, level, unit="dbuv_per_m", title="big",
                        limits=limit, suspects=run.results(EVIL))
     assert out.stat().st_size > 1000
+
+
+def test_extra_map_views_are_drawn(tmp_path):
+    from bench.report import MapViews
+
+    run = build_run(tmp_path)
+    write_report(run, MapViews(peaks=1, freqs_hz=(100e6,), bands_hz=((50e6, 150e6),)))
+    written = {p.name for p in (run.folder / "plots").iterdir()}
+    # a map at a chosen frequency, a band maximum and one per flagged peak (issue: near-field maps)
+    assert {"grid-map-100MHz.png", "grid-map-50-150MHz.png"} <= written
+    assert any(name.startswith("grid-map-peak1") for name in written)
