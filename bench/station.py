@@ -183,51 +183,61 @@ def connect_station(bench, *, needs: set[str], wait=None, poll_sleep=None) -> St
         Sleep between busy polls of the mast and turntable (default ``time.sleep``; the
         simulated bench advances its own clock on every poll and passes a no-op).
     """
+    profiles = profiles_for(bench)
+    station = Station(analyzer=None)
+    try:
+        for role in ("analyzer", "stage", "mast", "turntable", "supply"):
+            if role != "analyzer" and (role not in needs or getattr(bench, role, None) is None):
+                continue
+            device, identity = open_role(bench, role, profiles, wait=wait, poll_sleep=poll_sleep)
+            setattr(station, role, device)
+            station.identities[role] = identity
+        return station
+    except BaseException:
+        station.close()
+        raise
+
+
+def open_role(bench, role: str, profiles: dict, *, wait=None, poll_sleep=None, home: bool = True):
+    """Open one instrument of the bench and initialise it; returns (driver, identity text).
+
+    The stage is homed (``home=True``) because no move is allowed before homing.
+    """
     import time
 
     from bench.drivers.positioner import Mast, MastLimits, Turntable, TurntableLimits
     from bench.drivers.stage import Stage
     from bench.drivers.supply import Supply
 
-    profiles = profiles_for(bench)
-    opened = []
+    section = getattr(bench, role)
+    profile = profiles[role]
+    device = None
     try:
-        ap = profiles["analyzer"]
-        analyzer = Analyzer(open_transport(bench.analyzer.address, _with_timeout(ap.io, bench.analyzer.timeout_s)), ap)
-        opened.append(analyzer.transport)
-        station = Station(analyzer=analyzer)
-        station.identities["analyzer"] = analyzer.initialize()
-        if "stage" in needs and bench.stage is not None:
-            stage = Stage.open(bench.stage.address, profiles["stage"], stage_limits(bench.stage),
-                               baudrate=bench.stage.baudrate)
-            station.stage = stage
-            opened.append(stage)
-            station.identities["stage"] = stage.connect() or bench.stage.address
-            stage.home()
-        if "mast" in needs and bench.mast is not None:
-            mast = Mast.open(bench.mast.address, profiles["mast"], MastLimits(tuple(bench.mast.height_limits_m)),
-                             sleep=poll_sleep or time.sleep)
-            station.mast = mast
-            opened.append(mast)
-            station.identities["mast"] = mast.connect() or bench.mast.address
-        if "turntable" in needs and bench.turntable is not None:
-            table = Turntable.open(bench.turntable.address, profiles["turntable"],
-                                   TurntableLimits(tuple(bench.turntable.azimuth_limits_deg)),
+        if role == "analyzer":
+            device = Analyzer(open_transport(section.address, _with_timeout(profile.io, section.timeout_s)), profile)
+            return device, device.initialize()
+        if role == "stage":
+            device = Stage.open(section.address, profile, stage_limits(section), baudrate=section.baudrate)
+            identity = device.connect() or section.address
+            if home:
+                device.home()
+            return device, identity
+        if role in ("mast", "turntable"):
+            if role == "mast":
+                device = Mast.open(section.address, profile, MastLimits(tuple(section.height_limits_m)),
                                    sleep=poll_sleep or time.sleep)
-            station.turntable = table
-            opened.append(table)
-            station.identities["turntable"] = table.connect() or bench.turntable.address
-        if "supply" in needs and getattr(bench, "supply", None) is not None:
-            sp = profiles["supply"]
-            supply = Supply(open_transport(bench.supply.address, sp.io), sp, wait=wait)
-            station.supply = supply
-            opened.append(supply)
-            station.identities["supply"] = supply.initialize()
-        return station
+            else:
+                device = Turntable.open(section.address, profile, TurntableLimits(tuple(section.azimuth_limits_deg)),
+                                        sleep=poll_sleep or time.sleep)
+            return device, device.connect() or section.address
+        if role == "supply":
+            device = Supply(open_transport(section.address, profile.io), profile, wait=wait)
+            return device, device.initialize()
+        raise ConfigError(f"unknown instrument role {role!r}")
     except BaseException:
-        for dev in opened:
+        if device is not None:
             try:
-                dev.close()
+                device.close() if hasattr(device, "close") else device.transport.close()
             except Exception:  # noqa: BLE001 - closing after a failed open
                 pass
         raise
@@ -240,29 +250,23 @@ def _with_timeout(io, timeout_s: float):
 
 
 def identify_all(bench):
-    """(role, address, identity or 'ERROR: ...') for every instrument of a bench file."""
-    from bench.drivers.analyzer import Analyzer
+    """(role, address, identity or 'ERROR: ...') for every instrument of a bench file.
 
+    Each instrument is opened on its own (one failing does not hide the others); nothing moves:
+    the stage is not homed.
+    """
     rows = []
     profiles = profiles_for(bench)
-    ap = profiles["analyzer"]
-    try:
-        tr = open_transport(bench.analyzer.address, _with_timeout(ap.io, bench.analyzer.timeout_s))
-        try:
-            rows.append(("analyzer", bench.analyzer.address, Analyzer(tr, ap).identify()))
-        finally:
-            tr.close()
-    except BenchError as exc:
-        rows.append(("analyzer", bench.analyzer.address, f"ERROR: {exc}"))
-    for role in ("stage", "mast", "turntable", "supply"):
-        if getattr(bench, role, None) is None:
+    for role in ("analyzer", "stage", "mast", "turntable", "supply"):
+        section = getattr(bench, role, None)
+        if section is None:
             continue
         try:
-            st = connect_station(bench, needs={role})
+            device, identity = open_role(bench, role, profiles, home=False)
             try:
-                rows.append((role, getattr(bench, role).address, st.identities.get(role, "")))
+                rows.append((role, section.address, identity))
             finally:
-                st.close()
+                device.close() if hasattr(device, "close") else device.transport.close()
         except BenchError as exc:
-            rows.append((role, getattr(bench, role).address, f"ERROR: {exc}"))
+            rows.append((role, section.address, f"ERROR: {exc}"))
     return rows

@@ -90,6 +90,7 @@ def open_transport(address: str, settings: TransportSettings | None = None) -> "
 # --------------------------------------------------------------------------------------- VISA
 
 _RM_LOCK = threading.Lock()
+_WATCHDOG_GRACE_S = 2.0  # beyond the reply deadline before a stuck VISA call is cut off
 _RM = None
 
 
@@ -141,27 +142,50 @@ class VisaTransport:
         import pyvisa
         from pyvisa import constants
 
+        deadline_s = timeout_s if timeout_s is not None else self._settings.timeout_s
         with self._lock:
             old = None
             if timeout_s is not None:
                 old = self._res.timeout
-                self._res.timeout = int(timeout_s * 1000)
+                self._res.timeout = int(timeout_s * 1000)  # pyvisa wants ms
+            # A watchdog bounds every call: a peer that accepted and then closed the connection
+            # can keep a socket read spinning; closing the session ends it.
+            aborted = threading.Event()
+            watchdog = threading.Timer(deadline_s + _WATCHDOG_GRACE_S, self._abort, args=(aborted,))
+            watchdog.daemon = True
+            watchdog.start()
             try:
                 return fn()
             except pyvisa.errors.VisaIOError as exc:
+                if aborted.is_set():
+                    raise ReplyTimeoutError(f"{self.address}: no reply to {what!r} within {deadline_s:g} s "
+                                            "(connection closed)") from exc
                 if exc.error_code == constants.StatusCode.error_timeout:
-                    self._clear_quietly()  # a late reply must not reach the next query (pyvisa-py #376)
-                    raise ReplyTimeoutError(f"{self.address}: no reply to {what!r} within "
-                                            f"{(timeout_s or self._settings.timeout_s):g} s") from exc
+                    # a late reply must not reach the next query (pyvisa-py #376): the caller
+                    # reconnects after a timeout, which drops whatever is still in flight
+                    raise ReplyTimeoutError(f"{self.address}: no reply to {what!r} within {deadline_s:g} s") from exc
                 raise TransportError(f"{self.address}: {what!r}: {exc.description}") from exc
-            except (OSError, EOFError) as exc:
+            except (OSError, EOFError, ValueError, AttributeError, pyvisa.errors.InvalidSession) as exc:
+                if aborted.is_set():
+                    raise ReplyTimeoutError(f"{self.address}: no reply to {what!r} within {deadline_s:g} s "
+                                            "(connection closed)") from exc
+                if isinstance(exc, (ValueError, AttributeError)):
+                    raise
                 raise TransportError(f"{self.address}: {what!r}: connection lost ({exc})") from exc
             finally:
-                if old is not None:
+                watchdog.cancel()
+                if old is not None and not aborted.is_set():
                     try:
                         self._res.timeout = old
                     except Exception:  # noqa: BLE001 - resource already broken; keep the first error
                         pass
+
+    def _abort(self, flag: threading.Event) -> None:
+        flag.set()
+        try:
+            self._res.close()
+        except Exception:  # noqa: BLE001 - the session is being torn down on purpose
+            pass
 
     def _clear_quietly(self) -> None:
         try:

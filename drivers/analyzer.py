@@ -373,6 +373,10 @@ class Analyzer:
         out, self.warnings = self.warnings, []
         return out
 
+    def close(self) -> None:
+        """Close the connection."""
+        self.transport.close()
+
     def forget_state(self) -> None:
         """Forget what was applied (after a reconnect everything is sent again)."""
         self._applied.clear()
