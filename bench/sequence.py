@@ -78,6 +78,17 @@ class _Model(BaseModel):
     model_config = ConfigDict(frozen=True, extra="forbid")
 
 
+#: Sanity caps: far beyond any bench, they stop a typo (a "um" for a "mm") from planning a
+#: run of years or millions of positions; each message says which cap and why.
+MAX_FREQ_HZ = 1e12
+MIN_RBW_HZ = 1.0
+MAX_POINTS = 10_000_000
+MAX_COUNT = 10_000
+MAX_DWELL_S = 86_400.0
+MAX_RANGE_VALUES = 10_000
+MAX_GRID_POSITIONS = 250_000
+
+
 class SweepSettings(_Model):
     """One ``[sweeps.<name>]`` table: analyzer settings shared by steps.
 
@@ -107,6 +118,21 @@ class SweepSettings(_Model):
                                         f"{format_hz(self.stop_hz)}"))
         if self.step_hz is not None and self.points is not None:
             problems.append((("points",), "expected either step or points, found both"))
+        if self.stop_hz > MAX_FREQ_HZ:
+            problems.append((("stop",), f"expected a stop frequency up to {format_hz(MAX_FREQ_HZ)}, found "
+                                        f"{format_hz(self.stop_hz)}"))
+        if self.rbw_hz < MIN_RBW_HZ:
+            problems.append((("rbw",), f"expected an RBW of at least {MIN_RBW_HZ:g} Hz, found {self.rbw_hz:g} Hz"))
+        if self.points is not None and self.points > MAX_POINTS:
+            problems.append((("points",), f"expected at most {MAX_POINTS} points, found {self.points}"))
+        if self.step_hz is not None and self.stop_hz > self.start_hz and \
+                (self.stop_hz - self.start_hz) / self.step_hz > MAX_POINTS:
+            problems.append((("step",), f"expected a step giving at most {MAX_POINTS} points, found "
+                                        f"{format_hz(self.step_hz)} over {format_hz(self.stop_hz - self.start_hz)}"))
+        if self.count > MAX_COUNT:
+            problems.append((("count",), f"expected count <= {MAX_COUNT}, found {self.count}"))
+        if self.dwell_s is not None and self.dwell_s > MAX_DWELL_S:
+            problems.append((("dwell",), f"expected a dwell of at most one day, found {self.dwell_s:g} s"))
         if self.trace == "clear-write" and self.count != 1:
             problems.append((("count",), f"expected count = 1 with trace \"clear-write\" "
                                          f"(use max-hold or average to combine sweeps), found "
@@ -223,9 +249,23 @@ class GridStep(_Model):
                 self.orientations_deg):
             problems.append((("orientations",), "expected distinct orientations, found a "
                                                 "repeated angle"))
+        if not problems and self._estimated_positions() > MAX_GRID_POSITIONS:
+            problems.append((("step_size" if self.step_size_m is not None else "step_x",),
+                             f"expected at most {MAX_GRID_POSITIONS} positions per orientation, found about "
+                             f"{self._estimated_positions():.0f} (is the pitch in the right unit?)"))
         if problems:
             raise cross_check_error(problems)
         return self
+
+    def _estimated_positions(self) -> float:
+        """Grid points of the bounding box, without building them."""
+        if self.area is not None:
+            (x0, x1), (y0, y1) = self.area.x_m, self.area.y_m
+        else:
+            xs = [p[0] for p in self.polygon]
+            ys = [p[1] for p in self.polygon]
+            x0, x1, y0, y1 = min(xs), max(xs), min(ys), max(ys)
+        return ((x1 - x0) / self.pitch_x_m + 1) * ((y1 - y0) / self.pitch_y_m + 1)
 
     @property
     def pitch_x_m(self) -> float:
@@ -243,11 +283,15 @@ class _Range(_Model):
 
     @pydantic.model_validator(mode="after")
     def _ordered(self) -> "_Range":
-        start, stop, _ = self._triple()
+        start, stop, step = self._triple()
         if start > stop:
             raise cross_check_error([(("to",), f"expected to >= from "
                                                f"({self._show(start)}), found "
                                                f"{self._show(stop)}")])
+        if (stop - start) / step + 1 > MAX_RANGE_VALUES:
+            raise cross_check_error([(("step",), f"expected a step giving at most {MAX_RANGE_VALUES} "
+                                                 f"values, found {self._show(step)} over "
+                                                 f"{self._show(start)} to {self._show(stop)}")])
         return self
 
     def _triple(self) -> tuple[float, float, float]:
