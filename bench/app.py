@@ -27,6 +27,12 @@ class RunInterruptedExit(BenchError):
     exit_code = 3
 
 
+class OperatorStop(RunInterruptedExit):
+    """Ctrl-C or SIGTERM during a run: the run is kept and can be resumed."""
+
+    exit_code = 130
+
+
 def demo_bench_path() -> Path:
     """The demo bench file shipped with the package (used by ``--sim`` without ``--bench``)."""
     return Path(str(resources.files("bench.demo") / "demo-bench.toml"))

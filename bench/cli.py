@@ -102,17 +102,38 @@ def _setup_logging(verbose: bool) -> None:
     root.propagate = False
 
 
+def _sigterm_as_interrupt():
+    """SIGTERM (a service manager, ``timeout``) stops a run like Ctrl-C: kept and resumable."""
+    import signal
+    import threading
+
+    def handler(signum, frame):
+        raise KeyboardInterrupt
+
+    if threading.current_thread() is not threading.main_thread():
+        return None
+    return signal.signal(signal.SIGTERM, handler)
+
+
+def _restore_sigterm(previous) -> None:
+    import signal
+
+    if previous is not None:
+        signal.signal(signal.SIGTERM, previous)
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.verbose)
     from bench import app
 
+    previous = _sigterm_as_interrupt()
     try:
         return int(app.dispatch(args) or 0)
     except app.RunInterruptedExit as exc:
         print(f"bench: {exc}", file=sys.stderr)
-        return 3
+        return exc.exit_code
     except BenchError as exc:
         print(f"bench: {exc}", file=sys.stderr)
         if args.verbose:
@@ -122,6 +143,8 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("bench: stopped by the operator", file=sys.stderr)
         return 130
+    finally:
+        _restore_sigterm(previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -186,6 +186,13 @@ class Executor:
                 fn()
                 return
             except (TransportError, InstrumentError) as exc:
+                if _is_refusal(exc):
+                    # the instrument refused a command or a value (SCPI -1xx command, -2xx
+                    # execution error): doing it again gives the same answer
+                    self.store.log_event("error", f"{what}: {exc}")
+                    if cleanup is not None:
+                        cleanup()
+                    raise
                 self.faults += 1
                 self.store.log_event("warning", f"{what}: {exc}")
                 log.warning("%s failed: %s", what, exc)
@@ -302,6 +309,12 @@ class Executor:
             if self._far.get("azimuth") != azimuth:
                 st.turntable.set_azimuth(float(azimuth))
                 self._far["azimuth"] = azimuth
+
+
+def _is_refusal(exc: Exception) -> bool:
+    """True for an instrument error that a retry cannot cure (SCPI-1999 codes -100 to -299)."""
+    code = getattr(exc, "code", None)
+    return isinstance(exc, InstrumentError) and code is not None and -299 <= code <= -100
 
 
 def _pose_columns(pose) -> dict:

@@ -203,23 +203,35 @@ def _dynamic_handler(prep):
     return handler
 
 
-def _execute(prep, store: RunStore, plots: bool) -> None:
+def _connector(prep):
+    """``connect() -> Station`` for the instruments the plan needs."""
     from bench.station import connect_station
 
-    plan = prep.plan
-    needs = _needs(plan)
+    needs = _needs(prep.plan)
     wait = prep.sim.wait if prep.sim is not None else time.sleep
+    poll_sleep = (lambda s: None) if prep.sim is not None else None
+    return lambda: connect_station(prep.bench, needs=needs, wait=wait, poll_sleep=poll_sleep)
+
+
+def _execute(prep, store: RunStore, plots: bool, station=None) -> None:
+    plan = prep.plan
     live = sys.stderr.isatty()
     progress = Progress(len(plan.actions), plan.total_time_s, live=live)
     retry = RetryPolicy(first_delay_s=0.05, attempts=5) if prep.sim is not None else RetryPolicy()
-    poll_sleep = (lambda s: None) if prep.sim is not None else None
-    executor = Executor(plan, store, lambda: connect_station(prep.bench, needs=needs, wait=wait,
-                                                             poll_sleep=poll_sleep),
-                        progress=progress, retry=retry, on_step_done=_step_hook(prep, store.folder, plots),
-                        dynamic=_dynamic_handler(prep))
+    executor = Executor(plan, store, _connector(prep), progress=progress, retry=retry,
+                        on_step_done=_step_hook(prep, store.folder, plots), dynamic=_dynamic_handler(prep))
+    if station is not None:
+        executor.station = station
+        executor.identities.update(station.identities)
     runlog = _RunLog(store.folder)
+    hint = f"'bench resume {store.folder}{' --sim' if prep.sim is not None else ''}'"
     try:
         executor.run()
+    except KeyboardInterrupt:
+        store.update_manifest(state="interrupted", interrupted_reason="stopped by the operator")
+        from bench.app import OperatorStop
+
+        raise OperatorStop(f"stopped by the operator; the run is kept: continue it with {hint}") from None
     except BenchError as exc:
         if not isinstance(exc, RunInterrupted):
             # the run cannot go on (e.g. the instrument refused a setting): keep what was measured
@@ -228,8 +240,7 @@ def _execute(prep, store: RunStore, plots: bool) -> None:
         store.update_manifest(state="interrupted", interrupted_reason=str(exc))
         from bench.app import RunInterruptedExit
 
-        hint = " --sim" if prep.sim is not None else ""
-        raise RunInterruptedExit(f"{exc}; the run is kept: continue it with 'bench resume {store.folder}{hint}'") from exc
+        raise RunInterruptedExit(f"{exc}; the run is kept: continue it with {hint}") from exc
     finally:
         progress.close()
         runlog.close()
@@ -248,10 +259,17 @@ def _execute(prep, store: RunStore, plots: bool) -> None:
 def execute_new_run(prep, *, out_root: Path, plots: bool = True) -> Path:
     """Create the run folder and carry out the plan. Returns the run folder."""
     manifest, copies = build_manifest(prep, simulated=prep.sim is not None)
-    store = create_run(Path(out_root), prep.sequence.name, manifest)
+    # connect before creating the run folder: an unreachable bench leaves nothing behind
+    station = _connector(prep)()
     try:
+        store = create_run(Path(out_root), prep.sequence.name, manifest)
+    except BaseException:
+        station.close()
+        raise
+    try:
+        store.lock()
         _copy_tables(store.folder, copies)
-        _execute(prep, store, plots)
+        _execute(prep, store, plots, station=station)
     finally:
         store.close()
     return store.folder
@@ -279,6 +297,7 @@ def resume_run(folder: Path, *, bench_path: Path | None, sim: bool, board=None, 
                    board=board, seed=seed, realtime=realtime, stack=stack)
     store = RunStore(Path(folder))
     try:
+        store.lock()
         store.update_manifest(state="running", resumed=int(manifest.get("resumed", 0)) + 1)
         store.log_event("info", "resumed")
         _execute(prep, store, plots)

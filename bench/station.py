@@ -7,13 +7,14 @@ alone picks the transport.
 from __future__ import annotations
 
 import logging
+import re
 from pathlib import Path
 
 from bench.drivers.analyzer import Analyzer, load_analyzer_profile
 from bench.errors import BenchError, ConfigError, PlanError
 from bench.planner import AnalyzerCaps, bench_caps, make_plan
 from bench.run import Station
-from bench.transports import open_transport
+from bench.transports import is_visa_address, open_transport
 
 __all__ = ["capabilities", "build_plan", "connect_station", "identify_all", "profiles_for"]
 
@@ -101,6 +102,7 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
     from bench.analysis.transducers import load_table
     from bench.drivers.analyzer import Analyzer, SweepSettings
 
+    _check_addresses(bench)
     probe = Analyzer(transport=_NoTransport(bench.analyzer.address), profile=profiles["analyzer"])
     for action in plan.actions:
         for seg in action.segments:
@@ -114,9 +116,12 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
         limit = getattr(step, "limit", None)
         if limit is not None:
             try:
-                load_limit(resolve_limit(limit, sequence_dir))
+                limit_set = load_limit(resolve_limit(limit, sequence_dir))
             except (ConfigError, BenchError) as exc:
                 raise PlanError(f"steps[{i}] '{step.label}': limit {limit!r} cannot be used: {exc}") from None
+            _check_limit_fits(i, step, limit_set, plan, bench)
+        if step.kind == "final":
+            _check_final(i, step, sequence, profiles["analyzer"])
         if step.kind == "ambient" and getattr(bench, "supply", None) is None:
             raise PlanError(f"steps[{i}] '{step.label}': an ambient capture needs the board switched off, and "
                             "the bench file has no [supply] to do it unattended")
@@ -129,6 +134,61 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
                 load_table(path, role=role).check_covers(list(span))
             except (ConfigError, BenchError) as exc:
                 raise PlanError(f"step '{label}': {exc}") from None
+
+
+_SERIAL_SCHEMES = ("socket://", "rfc2217://", "loop://", "spy://", "hwgrep://", "alt://")
+
+
+def _check_addresses(bench) -> None:
+    """Every address must name a transport: a VISA resource, a pyserial URL or a device path."""
+    for role in ("analyzer", "stage", "mast", "turntable", "supply"):
+        section = getattr(bench, role, None)
+        if section is None:
+            continue
+        address = section.address.strip()
+        if address.startswith("sim://"):
+            raise PlanError(f"[{role}] address {address!r} is a placeholder for the simulated bench: "
+                            "run with --sim, or put the instrument's real address in the bench file")
+        if not (is_visa_address(address) or address.startswith(_SERIAL_SCHEMES) or address.startswith("/")
+                or re.fullmatch(r"COM\d+", address, re.IGNORECASE)):
+            raise PlanError(f"[{role}] address: expected a VISA resource (TCPIP::host::port::SOCKET, "
+                            f"GPIB0::n::INSTR, ...), a serial device path or a socket:// URL, found {address!r}")
+
+
+def _step_unit(step, bench) -> str:
+    """The unit a step's readings have after its transducer chain (as the run stores them)."""
+    if step.kind == "grid":
+        probe = bench.probes.get(step.probe)
+        return "dbua_per_m" if probe is not None and probe.kind == "h-loop" else "dbuv_per_m"
+    return "dbuv_per_m" if bench.transducers is not None else "dbuv"
+
+
+def _check_limit_fits(i: int, step, limit_set, plan, bench) -> None:
+    """A limit in the step's unit that covers at least part of its sweep (else a silent pass)."""
+    import numpy as np
+
+    unit = _step_unit(step, bench)
+    if limit_set.quantity != unit:
+        raise PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} is in {limit_set.quantity}, but the "
+                        f"step's readings are in {unit} after its transducer chain")
+    span = _step_span(plan, step.label)
+    if span is not None:
+        freqs = np.linspace(span[0], span[1], 2001)
+        if not np.any(np.isfinite(limit_set.screening_level(freqs))):
+            raise PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} has no line anywhere in the "
+                            f"sweep {span[0] / 1e6:g}-{span[1] / 1e6:g} MHz")
+
+
+def _check_final(i: int, step, sequence, profile) -> None:
+    """A final step's narrow span and dwell must be settings the analyzer can do."""
+    sweep = sequence.sweeps[sequence.step(step.of).sweep]
+    half = max(step.span_hz, 10.0 * sweep.rbw_hz) / 2.0
+    if sweep.start_hz - half < profile.freq_min_hz or sweep.stop_hz + half > profile.freq_max_hz:
+        raise PlanError(f"steps[{i}] '{step.label}': span {step.span_hz / 1e6:g} MHz around the suspects goes "
+                        f"outside the analyzer's {profile.freq_min_hz / 1e3:g} kHz-{profile.freq_max_hz / 1e9:g} GHz")
+    if not profile.min_sweep_time_s <= step.dwell_s <= profile.max_sweep_time_s:
+        raise PlanError(f"steps[{i}] '{step.label}': dwell {step.dwell_s:g} s outside the analyzer's sweep times "
+                        f"{profile.min_sweep_time_s:g}-{profile.max_sweep_time_s:g} s")
 
 
 def _tables_by_step(sequence, bench) -> dict:

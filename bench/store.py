@@ -249,8 +249,35 @@ class RunStore:
         except sqlite3.Error:
             pass
 
+    def lock(self) -> None:
+        """Hold an exclusive lock on the run folder until :meth:`close` (one writer at a time).
+
+        Raises
+        ------
+        StoreError
+            Another process (a ``bench run`` or ``bench resume``) is writing this run.
+        """
+        import fcntl
+
+        fh = open(self.folder / "run.lock", "a+", encoding="utf-8")
+        try:
+            fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            fh.close()
+            raise StoreError(f"{self.folder}: the run is in use by another bench process; "
+                             "wait for it to finish or stop it first") from None
+        fh.seek(0)
+        fh.truncate()
+        fh.write(f"{os.getpid()}\n")
+        fh.flush()
+        self._lock_file = fh
+
     def close(self) -> None:
         self._db.close()
+        lock = getattr(self, "_lock_file", None)
+        if lock is not None:
+            lock.close()  # releases the flock
+            self._lock_file = None
 
     # ------------------------------------------------------------------ reading
     def done_actions(self) -> set[int]:

@@ -66,6 +66,7 @@ class _Caps(_Strict):
     rbw_max: str
     sweep_time_k: float = Field(gt=0)
     min_sweep_time: str
+    max_sweep_time: str = "4000 s"
     transfer_rate: str
     command_overhead: str
     max_attenuation: str
@@ -110,6 +111,7 @@ class AnalyzerProfile:
     rbw_max_hz: float
     sweep_time_k: float
     min_sweep_time_s: float
+    max_sweep_time_s: float
     transfer_bytes_per_s: float
     command_overhead_s: float
     max_attenuation_db: float
@@ -170,6 +172,7 @@ def load_analyzer_profile(name_or_path: str | Path, *, base_dir: Path | None = N
         rbw_max_hz=q(caps.rbw_max, "frequency", "capabilities.rbw_max"),
         sweep_time_k=caps.sweep_time_k,
         min_sweep_time_s=q(caps.min_sweep_time, "time", "capabilities.min_sweep_time"),
+        max_sweep_time_s=q(caps.max_sweep_time, "time", "capabilities.max_sweep_time"),
         transfer_bytes_per_s=q(caps.transfer_rate, "data_rate", "capabilities.transfer_rate"),
         command_overhead_s=q(caps.command_overhead, "time", "capabilities.command_overhead"),
         max_attenuation_db=q(caps.max_attenuation, "db", "capabilities.max_attenuation"),

@@ -153,8 +153,10 @@ def test_missing_file_and_bad_fault_option_are_one_line(tmp_path, capsys):
 
 
 def test_check_prints_plan_without_touching_instruments(tmp_path, capsys):
+    # addresses of a real bench (documentation range, RFC 5737): check must not contact them
+    bench = _bench_variant(tmp_path, lambda t: t)
     seq = _write(tmp_path / "quick.toml", QUICK)
-    assert main(["check", str(seq), "--bench", str(DEMO / "demo-bench.toml")]) == 0
+    assert main(["check", str(seq), "--bench", str(bench)]) == 0
     out = capsys.readouterr().out
     # 270 MHz span at the default step RBW/2 = 60 kHz -> but points = 4501 given: 2 traces of 4501 points
     assert "4501 points" in out and "check: OK" in out
@@ -340,9 +342,30 @@ def test_check_catches_what_would_fail_mid_run(tmp_path, capsys, change, fragmen
 def _bench_variant(tmp_path: Path, edit) -> Path:
     text = (DEMO / "demo-bench.toml").read_text(encoding="utf-8")
     text = text.replace('"tables/', f'"{DEMO}/tables/')
-    path = tmp_path / "bench.toml"
+    # addresses of a real bench (documentation range, RFC 5737): checks must never contact them
+    for placeholder, address in (("sim://analyzer", "TCPIP::192.0.2.10::5025::SOCKET"),
+                                 ("sim://supply", "TCPIP::192.0.2.11::5025::SOCKET"),
+                                 ("sim://stage", "/dev/ttyUSB0"), ("sim://mast", "/dev/ttyUSB1"),
+                                 ("sim://turntable", "/dev/ttyUSB2")):
+        text = text.replace(f'"{placeholder}"', f'"{address}"')
+    path = tmp_path / "bench-variant.toml"
     path.write_text(edit(text), encoding="utf-8")
     return path
+
+
+def test_placeholder_address_without_sim_is_refused(tmp_path, capsys):
+    seq = _write(tmp_path / "quick.toml", QUICK)
+    assert main(["run", str(seq), "--bench", str(DEMO / "demo-bench.toml"), "--out", str(tmp_path / "runs")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "placeholder for the simulated bench" in err[0]
+    assert not (tmp_path / "runs").exists()
+
+
+def test_limit_in_the_wrong_unit_is_refused(tmp_path, capsys):
+    # a conducted limit (dBuV, CISPR 32 Table A.10) on a radiated step (dBuV/m): a silent pass otherwise
+    seq = _write(tmp_path / "quick.toml", QUICK.replace("cispr32-class-b-3m", "cispr32-conducted-class-b"))
+    assert main(["check", str(seq), "--sim"]) == 2
+    assert "is in dbuv, but the step's readings are in dbuv_per_m" in capsys.readouterr().err
 
 
 def test_ambient_without_supply_is_refused_before_running(tmp_path, capsys):
