@@ -22,6 +22,16 @@ SAFETY_LINE = ("Safety: analyzer inputs are damaged by more than about +30 dBm o
                "stage can pinch and crash a probe. A pre-scan is an estimate, not a compliance verdict.")
 
 
+def _seed(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, found {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number >= 0, found {value}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="bench", description="Radiated-emission pre-scans on a bench or a simulated bench.")
     p.add_argument("-v", "--verbose", action="store_true", help="more detail (all validation errors, debug log)")
@@ -32,7 +42,7 @@ def build_parser() -> argparse.ArgumentParser:
         g.add_argument("--bench", type=Path, help="bench file (instruments, addresses, tables, site)")
         g.add_argument("--sim", action="store_true", help="use the built-in simulated bench over loopback")
         sp.add_argument("--board", type=Path, help="with --sim: simulated board file (default: the demo board)")
-        sp.add_argument("--seed", type=int, default=1, help="with --sim: random seed (default 1)")
+        sp.add_argument("--seed", type=_seed, default=1, help="with --sim: random seed >= 0 (default 1)")
         sp.add_argument("--realtime", action="store_true", help="with --sim: sweeps and moves take their physical time")
 
     sp = sub.add_parser("run", help="check a sequence, then run it and store the results")
@@ -55,7 +65,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("sim", help="serve the simulated bench on loopback and print its addresses")
     sp.add_argument("--port", type=int, default=0, help="analyzer SCPI port (default: an ephemeral one)")
     sp.add_argument("--board", type=Path)
-    sp.add_argument("--seed", type=int, default=1)
+    sp.add_argument("--seed", type=_seed, default=1)
     sp.add_argument("--realtime", action="store_true")
 
     sp = sub.add_parser("export", help="export a run to CSV (and Parquet)")

@@ -403,7 +403,10 @@ def _compare_open_runs(run_b, run_a, out) -> Path:
     labels = _common_labels(run_b, run_a)
     if not labels:
         raise AnalysisError(f"no step label has data in both {run_b.folder} and {run_a.folder}")
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise AnalysisError(f"{out}: cannot create the comparison folder: {exc.strerror or exc}") from None
     sections, summary = [], []
     for label in labels:
         kind = runview.step_info(run_a, label).get("kind", "")

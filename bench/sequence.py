@@ -56,7 +56,7 @@ STEP_KINDS = ("ambient", "sweep", "grid", "prescan", "final")
 
 Detector = Literal["peak", "negative", "sample", "average", "rms", "quasi-peak", "cispr-average"]
 Polarization = Literal["horizontal", "vertical"]
-Label = Annotated[StrictStr, Field(pattern=r"^[a-z0-9_-]+$")]
+Label = Annotated[StrictStr, Field(pattern=r"^[a-z0-9_-]{1,64}$")]
 
 Frequency = quantity("frequency", non_negative=True)
 PositiveFrequency = quantity("frequency", positive=True)

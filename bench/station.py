@@ -131,9 +131,21 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
             continue
         for role, path in files:
             try:
-                load_table(path, role=role).check_covers(list(span))
+                table = load_table(path, role=role)
+                table.check_covers(list(span))
             except (ConfigError, BenchError) as exc:
                 raise PlanError(f"step '{label}': {exc}") from None
+            if role == "probe_factor":
+                _check_probe_unit(label, sequence, bench, table)
+
+
+def _check_probe_unit(label: str, sequence, bench, table) -> None:
+    """An H loop's factor converts to dBuA/m (dB(S/m)), an E probe's to dBuV/m (dB/m)."""
+    probe = bench.probes[sequence.step(label).probe]
+    wanted = "db_s_per_m" if probe.kind == "h-loop" else "db_per_m"
+    if table.value_unit != wanted:
+        raise PlanError(f"step '{label}': probe table {table.name!r} is in {table.value_unit}, but a {probe.kind} "
+                        f"factor must be in {wanted} (column name ending in _{wanted})")
 
 
 _SERIAL_SCHEMES = ("socket://", "rfc2217://", "loop://", "spy://", "hwgrep://", "alt://")

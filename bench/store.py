@@ -333,7 +333,10 @@ class RunStore:
     def export_csv(self, out_dir: Path) -> list[Path]:
         """Write ``traces.csv`` (metadata), one long ``spectra-<step>.csv`` per step, ``results.csv``."""
         out_dir = Path(out_dir)
-        out_dir.mkdir(parents=True, exist_ok=True)
+        try:
+            out_dir.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise StoreError(f"{out_dir}: cannot create the export folder: {exc.strerror or exc}") from None
         written = []
         meta = self.traces()
         path = out_dir / "traces.csv"

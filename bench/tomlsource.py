@@ -631,7 +631,7 @@ def _message(item: dict) -> str:
         hint = suggest(value, choices) if isinstance(value, str) else ""
         return f"expected one of {', '.join(choices)}, found {found}{hint}"
     if kind == "string_pattern_mismatch":
-        return f"expected lower-case letters, digits, '-' or '_', found {found}"
+        return f"expected 1 to 64 lower-case letters, digits, '-' or '_', found {found}"
     if kind in ("too_short", "too_long"):
         return _length_message(kind, ctx, item.get("input"))
     if kind in ("greater_than", "greater_than_equal", "less_than", "less_than_equal"):

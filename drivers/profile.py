@@ -61,7 +61,13 @@ def load_profile_data(name_or_path: str | Path, *, base_dir: Path | None = None)
         if not path.is_file():
             raise ConfigError(f"profile file not found: {path}")
         origin = str(path)
-        text = path.read_text(encoding="utf-8")
+        try:
+            text = path.read_text(encoding="utf-8")
+        except UnicodeDecodeError as exc:
+            raise ConfigError(f"expected a UTF-8 TOML profile, found bytes that are not UTF-8 at byte {exc.start}",
+                              file=origin) from None
+        except OSError as exc:
+            raise ConfigError(f"cannot read profile: {exc.strerror or exc}", file=origin) from None
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:

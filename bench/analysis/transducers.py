@@ -245,9 +245,12 @@ def _read_csv(path: Path) -> tuple[dict[str, str], int, list[str], list[tuple[in
     header_line = 0
     rows: list[tuple[int, list[str]]] = []
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark (spreadsheet export) is fine
     except OSError as exc:
         raise ConfigError(f"cannot read transducer table: {exc.strerror}", file=str(path)) from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"expected a UTF-8 text table, found bytes that are not UTF-8 at byte {exc.start}",
+                          file=str(path)) from None
     for number, raw in enumerate(text.splitlines(), start=1):
         stripped = raw.strip()
         if stripped.startswith("#"):

@@ -103,7 +103,7 @@ def _gain_spec(value: Any):
     for index, row in enumerate(value):
         if not isinstance(row, (tuple, list)) or len(row) != 2:
             raise PydanticCustomError("value_error", "row {i}: expected [frequency, gain] like "
-                                      '["100 MHz", "1.5 dBi"], found {row!r}', {"i": index, "row": row})
+                                      '["100 MHz", "1.5 dBi"], found {row}', {"i": index, "row": repr(row)})
         try:
             rows.append((parse(row[0], "frequency"), _gain_db(row[1])))
         except UnitError as exc:
@@ -539,6 +539,9 @@ def load_board(path) -> Board:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise ConfigError(f"cannot read board file: {exc.strerror or exc}", file=str(path)) from exc
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"expected a UTF-8 TOML board file, found bytes that are not UTF-8 at byte {exc.start}",
+                          file=str(path)) from None
     return parse_board(text, origin=str(path))
 
 
