@@ -78,13 +78,3 @@ def test_error_tree_public_names():
     for name in errors.__all__:
         assert issubclass(getattr(errors, name), errors.BenchError)
     assert errors.ConfigError.exit_code == 2
-
-
-def test_no_origin_mentions_in_sources():
-    import re
-
-    pattern = re.compile(r"seed document|the (video|lecture|speaker)\b|course material", re.IGNORECASE)
-    hits = []
-    for _, path in module_files():
-        hits += [f"{path.name}: {m.group(0)}" for m in pattern.finditer(path.read_text(encoding="utf-8"))]
-    assert hits == []
