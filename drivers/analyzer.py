@@ -21,7 +21,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 from bench import units
-from bench.drivers.profile import load_profile_data
+from bench.drivers.profile import load_profile_source
 from bench.errors import ConfigError, InstrumentError, PlanError
 from bench.ieee488 import decode_float32
 from bench.transports import TransportSettings
@@ -128,13 +128,16 @@ class AnalyzerProfile:
 
 def load_analyzer_profile(name_or_path: str | Path, *, base_dir: Path | None = None) -> AnalyzerProfile:
     """Load and validate an analyzer profile (built-in name or path)."""
-    data, origin = load_profile_data(name_or_path, base_dir=base_dir)
+    from bench.tomlsource import validation_to_config_error
+
+    source = load_profile_source(name_or_path, base_dir=base_dir)
+    data, origin = source.data, source.file
+    if data.get("kind") != "analyzer":
+        raise source.error(("kind",), f"expected kind = \"analyzer\" (an analyzer profile), found {data.get('kind')!r}")
     try:
         model = _ProfileModel.model_validate(data)
     except ValidationError as exc:
-        err = exc.errors()[0]
-        key = ".".join(str(p) for p in err["loc"])
-        raise ConfigError(f"{err['msg']}", file=origin, key=key) from None
+        raise validation_to_config_error(source, exc, _ProfileModel) from None
     if model.schema_ != 1:
         raise ConfigError(f"expected schema = 1, found {model.schema_}", file=origin, key="schema")
     if model.kind != "analyzer":

@@ -29,8 +29,8 @@ def builtin_profiles() -> dict[str, str]:
     return out
 
 
-def load_profile_data(name_or_path: str | Path, *, base_dir: Path | None = None) -> tuple[dict, str]:
-    """Read a profile's TOML.
+def load_profile_source(name_or_path: str | Path, *, base_dir: Path | None = None):
+    """Read a profile's TOML with the line of every key (for one-line errors).
 
     Parameters
     ----------
@@ -41,35 +41,31 @@ def load_profile_data(name_or_path: str | Path, *, base_dir: Path | None = None)
 
     Returns
     -------
-    data : dict
-        Parsed TOML.
-    origin : str
-        Where it came from (path or ``builtin:<name>``), for messages and the run manifest.
+    bench.tomlsource.TomlSource
+        Its ``file`` is the path, or ``builtin:<name>`` for a built-in profile.
     """
+    from bench.tomlsource import read_toml
+
     text_name = str(name_or_path)
     if not text_name.endswith(".toml") and "/" not in text_name and "\\" not in text_name:
         entry = resources.files("bench.drivers") / "profiles" / f"{text_name}.toml"
         if not entry.is_file():
             known = ", ".join(builtin_profiles())
             raise ConfigError(f"unknown instrument profile {text_name!r} (built-in: {known}; or give a path to a .toml)")
-        origin = f"builtin:{text_name}"
-        text = entry.read_text(encoding="utf-8")
-    else:
-        path = Path(text_name)
-        if not path.is_absolute() and base_dir is not None:
-            path = base_dir / path
-        if not path.is_file():
-            raise ConfigError(f"profile file not found: {path}")
-        origin = str(path)
-        try:
-            text = path.read_text(encoding="utf-8")
-        except UnicodeDecodeError as exc:
-            raise ConfigError(f"expected a UTF-8 TOML profile, found bytes that are not UTF-8 at byte {exc.start}",
-                              file=origin) from None
-        except OSError as exc:
-            raise ConfigError(f"cannot read profile: {exc.strerror or exc}", file=origin) from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"TOML syntax error: {exc}", file=origin) from exc
-    return data, origin
+        import dataclasses
+
+        with resources.as_file(entry) as path:
+            source = read_toml(path)
+        return dataclasses.replace(source, file=f"builtin:{text_name}")
+    path = Path(text_name)
+    if not path.is_absolute() and base_dir is not None:
+        path = base_dir / path
+    if not path.is_file():
+        raise ConfigError(f"profile file not found: {path}")
+    return read_toml(path)
+
+
+def load_profile_data(name_or_path: str | Path, *, base_dir: Path | None = None) -> tuple[dict, str]:
+    """Read a profile's TOML: (parsed data, origin: the path or ``builtin:<name>``)."""
+    source = load_profile_source(name_or_path, base_dir=base_dir)
+    return source.data, source.file

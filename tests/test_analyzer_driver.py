@@ -148,3 +148,21 @@ def test_unknown_profile_is_a_one_line_error():
         load_analyzer_profile("no-such-profile")
     assert "unknown instrument profile 'no-such-profile'" in str(info.value)
     assert "\n" not in str(info.value)
+
+
+def test_profile_errors_are_one_line_with_file_line_and_key(tmp_path):
+    text = (tmp_path / "p.toml")
+    base = load_analyzer_profile("scpi-analyzer").origin  # builtin:scpi-analyzer
+    assert base == "builtin:scpi-analyzer"
+    from importlib import resources
+
+    original = (resources.files("bench.drivers") / "profiles" / "scpi-analyzer.toml").read_text(encoding="utf-8")
+    text.write_text(original.replace("max_points = 40001", "max_points = 40001\nmax_pionts = 3"), encoding="utf-8")
+    with pytest.raises(ConfigError) as info:
+        load_analyzer_profile(text)
+    message = str(info.value)
+    assert message.startswith(f"{text}:")
+    assert "capabilities.max_pionts" in message and "max_points" in message  # close-match suggestion
+    assert "\n" not in message
+    with pytest.raises(ConfigError, match='expected kind = "analyzer"'):
+        load_analyzer_profile("gcode-cartesian")  # a stage profile named as an analyzer's
