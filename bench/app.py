@@ -62,6 +62,10 @@ def prepare(sequence_path: Path, *, bench_path: Path | None, sim: bool, board: P
     from bench.station import build_plan
     from bench.sequence import load_sequence
 
+    if faults and not sim:
+        raise ConfigError("--fault injects faults into the simulated bench: use it with --sim")
+    if board is not None and not sim:
+        raise ConfigError("--board chooses the simulated board: use it with --sim")
     sequence = load_sequence(sequence_path)
     if bench_path is None:
         if not sim:

@@ -9,6 +9,8 @@ report) and PNGs, by default in ``<after run>/compare-<before run folder name>/`
 
 from __future__ import annotations
 
+import shutil
+
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -19,6 +21,7 @@ from bench import plots
 from bench.analysis import maps as maps_mod
 from bench.analysis import runview
 from bench.analysis.peaks import find_peaks_hz
+from bench.units import format_hz
 from bench.errors import AnalysisError, BenchError
 from bench.report import (DISCLAIMER, embed_png, esc, html_table, page, safe_name)
 from bench.store import open_run
@@ -77,8 +80,8 @@ def compare_spectra(f1, l1, f2, l2) -> tuple[np.ndarray, np.ndarray]:
         return f1.copy(), l2 - l1
     lo, hi = max(f1[0], f2[0]), min(f1[-1], f2[-1])
     if lo >= hi:
-        raise AnalysisError(f"spans do not overlap: before {f1[0]:.9g} to {f1[-1]:.9g} Hz, "
-                            f"after {f2[0]:.9g} to {f2[-1]:.9g} Hz")
+        raise AnalysisError(f"spans do not overlap: before {format_hz(f1[0])} to {format_hz(f1[-1])}, "
+                            f"after {format_hz(f2[0])} to {format_hz(f2[-1])}")
     in1 = (f1 >= lo) & (f1 <= hi)
     in2 = (f2 >= lo) & (f2 <= hi)
     if in1.sum() <= in2.sum():
@@ -403,10 +406,20 @@ def _compare_open_runs(run_b, run_a, out) -> Path:
     labels = _common_labels(run_b, run_a)
     if not labels:
         raise AnalysisError(f"no step label has data in both {run_b.folder} and {run_a.folder}")
+    created = not out.exists()
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         raise AnalysisError(f"{out}: cannot create the comparison folder: {exc.strerror or exc}") from None
+    try:
+        return _write_comparison(run_b, run_a, labels, out)
+    except BaseException:
+        if created:  # nothing half-written: a refused comparison leaves no folder behind
+            shutil.rmtree(out, ignore_errors=True)
+        raise
+
+
+def _write_comparison(run_b, run_a, labels, out: Path) -> Path:
     sections, summary = [], []
     for label in labels:
         kind = runview.step_info(run_a, label).get("kind", "")

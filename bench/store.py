@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 import tomli_w
 
-from bench.errors import StoreError
+from bench.errors import ConfigError, StoreError
 
 __all__ = ["RunStore", "TraceMeta", "open_run", "create_run", "write_manifest_atomic"]
 
@@ -156,7 +156,8 @@ class RunStore:
         self._manifest_cache: tuple[int, dict] | None = None
         db = self.folder / "data.sqlite"
         if not (self.folder / "manifest.toml").is_file():
-            raise StoreError(f"{self.folder}: not a run folder (no manifest.toml)")
+            # a path the user typed: a mistake in the command line, not a storage failure
+            raise ConfigError(f"{self.folder}: not a run folder (no manifest.toml)")
         try:
             if readonly:
                 self._db = sqlite3.connect(f"file:{db}?mode=ro", uri=True, check_same_thread=False)
@@ -243,9 +244,14 @@ class RunStore:
             self._db.execute("INSERT INTO events (t_wall, level, text) VALUES (?, ?, ?)", (time.time(), level, text))
 
     def checkpoint(self) -> None:
-        """Fold the WAL back into the database at the end of a run (pitfalls: Storage)."""
+        """Fold the WAL back into the database at the end of a run (pitfalls: Storage).
+
+        The finished database is left as one file (rollback journal mode), so a run folder can
+        be copied or opened read-only anywhere; a resume switches it back to WAL.
+        """
         try:
             self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+            self._db.execute("PRAGMA journal_mode=DELETE")
         except sqlite3.Error:
             pass
 

@@ -9,7 +9,7 @@ import textwrap
 import numpy as np
 import pytest
 
-from bench.errors import StoreError
+from bench.errors import ConfigError, StoreError
 from bench.store import TraceMeta, create_run, open_run
 
 
@@ -63,7 +63,7 @@ def test_manifest_rewrite_is_atomic(tmp_path):
 
 
 def test_not_a_run_folder(tmp_path):
-    with pytest.raises(StoreError, match="not a run folder"):
+    with pytest.raises(ConfigError, match="not a run folder"):
         open_run(tmp_path)
 
 

@@ -204,7 +204,7 @@ def _check_table(table: TransducerTable) -> None:
                           f"{', '.join(ROLES)}")
     allowed = ROLES[table.role][1]
     if table.value_unit not in allowed:
-        raise ConfigError(f"{where}: a {table.role} table is in "
+        raise ConfigError(f"{where}: {'an' if table.role[0] in 'aeiou' else 'a'} {table.role} table is in "
                           f"{' or '.join(_UNIT_TEXT[u] for u in allowed)}, found values in "
                           f"{_UNIT_TEXT.get(table.value_unit, table.value_unit)}")
     freq, value = table.freq_hz, table.value_db
