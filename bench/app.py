@@ -83,8 +83,14 @@ def prepare(sequence_path: Path, *, bench_path: Path | None, sim: bool, board: P
     try:
         plan = build_plan(sequence, bench, sequence_dir=Path(sequence_path).parent)
     except PlanError as exc:
-        # name the file the problem is in: the sequence, checked against this bench
-        raise type(exc)(f"{sequence_path} (on bench {bench_path}): {exc}") from None
+        # name the file (and line) the problem is in: the sequence, checked against this bench
+        where = str(sequence_path)
+        key_path = getattr(exc, "key_path", None)
+        if key_path:
+            from bench.tomlsource import read_toml
+
+            where += f":{read_toml(sequence_path).line_of(key_path)}"
+        raise type(exc)(f"{where} (on bench {bench_path}): {exc}") from None
     return Prepared(sequence, Path(sequence_path), bench, Path(bench_path), plan, simulator)
 
 

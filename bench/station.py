@@ -96,6 +96,16 @@ def resolve_limit(name: str, sequence_dir: Path | None) -> str:
     return name
 
 
+def _at(exc: PlanError, *key_path) -> PlanError:
+    """Attach the sequence key path an error is about (the CLI turns it into a line number)."""
+    exc.key_path = tuple(key_path)
+    return exc
+
+
+def _index(sequence, label: str) -> int:
+    return next(i for i, st in enumerate(sequence.steps) if st.label == label)
+
+
 def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | None = None) -> None:
     """Refuse, before anything runs, what would fail mid-run (see :func:`build_plan`)."""
     from bench.analysis.limits import load_limit
@@ -111,20 +121,22 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
                                              vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
                                              attenuation_db=seg.attenuation_db))
             except PlanError as exc:
-                raise PlanError(f"step '{action.step_label}': {exc}") from None
+                raise _at(PlanError(f"step '{action.step_label}': {exc}"),
+                          "steps", _index(sequence, action.step_label)) from None
     for i, step in enumerate(sequence.steps):
         limit = getattr(step, "limit", None)
         if limit is not None:
             try:
                 limit_set = load_limit(resolve_limit(limit, sequence_dir))
             except (ConfigError, BenchError) as exc:
-                raise PlanError(f"steps[{i}] '{step.label}': limit {limit!r} cannot be used: {exc}") from None
+                raise _at(PlanError(f"steps[{i}] '{step.label}': limit {limit!r} cannot be used: {exc}"),
+                          "steps", i, "limit") from None
             _check_limit_fits(i, step, limit_set, plan, bench)
         if step.kind == "final":
             _check_final(i, step, sequence, profiles["analyzer"])
         if step.kind == "ambient" and getattr(bench, "supply", None) is None:
-            raise PlanError(f"steps[{i}] '{step.label}': an ambient capture needs the board switched off, and "
-                            "the bench file has no [supply] to do it unattended")
+            raise _at(PlanError(f"steps[{i}] '{step.label}': an ambient capture needs the board switched off, and "
+                            "the bench file has no [supply] to do it unattended"), "steps", i)
     for label, files in _tables_by_step(sequence, bench).items():
         span = _step_span(plan, label)
         if span is None:
@@ -134,7 +146,7 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
                 table = load_table(path, role=role)
                 table.check_covers(list(span))
             except (ConfigError, BenchError) as exc:
-                raise PlanError(f"step '{label}': {exc}") from None
+                raise _at(PlanError(f"step '{label}': {exc}"), "steps", _index(sequence, label)) from None
             if role == "probe_factor":
                 _check_probe_unit(label, sequence, bench, table)
 
@@ -181,14 +193,14 @@ def _check_limit_fits(i: int, step, limit_set, plan, bench) -> None:
 
     unit = _step_unit(step, bench)
     if limit_set.quantity != unit:
-        raise PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} is in {limit_set.quantity}, but the "
-                        f"step's readings are in {unit} after its transducer chain")
+        raise _at(PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} is in {limit_set.quantity}, but the "
+                        f"step's readings are in {unit} after its transducer chain"), "steps", i, "limit")
     span = _step_span(plan, step.label)
     if span is not None:
         freqs = np.linspace(span[0], span[1], 2001)
         if not np.any(np.isfinite(limit_set.screening_level(freqs))):
-            raise PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} has no line anywhere in the "
-                            f"sweep {span[0] / 1e6:g}-{span[1] / 1e6:g} MHz")
+            raise _at(PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} has no line anywhere in the "
+                            f"sweep {span[0] / 1e6:g}-{span[1] / 1e6:g} MHz"), "steps", i, "limit")
 
 
 def _check_final(i: int, step, sequence, profile) -> None:
@@ -196,11 +208,12 @@ def _check_final(i: int, step, sequence, profile) -> None:
     sweep = sequence.sweeps[sequence.step(step.of).sweep]
     half = max(step.span_hz, 10.0 * sweep.rbw_hz) / 2.0
     if sweep.start_hz - half < profile.freq_min_hz or sweep.stop_hz + half > profile.freq_max_hz:
-        raise PlanError(f"steps[{i}] '{step.label}': span {step.span_hz / 1e6:g} MHz around the suspects goes "
-                        f"outside the analyzer's {profile.freq_min_hz / 1e3:g} kHz-{profile.freq_max_hz / 1e9:g} GHz")
+        raise _at(PlanError(f"steps[{i}] '{step.label}': span {step.span_hz / 1e6:g} MHz around the suspects goes "
+                        f"outside the analyzer's {profile.freq_min_hz / 1e3:g} kHz-{profile.freq_max_hz / 1e9:g} GHz"),
+                  "steps", i, "span")
     if not profile.min_sweep_time_s <= step.dwell_s <= profile.max_sweep_time_s:
-        raise PlanError(f"steps[{i}] '{step.label}': dwell {step.dwell_s:g} s outside the analyzer's sweep times "
-                        f"{profile.min_sweep_time_s:g}-{profile.max_sweep_time_s:g} s")
+        raise _at(PlanError(f"steps[{i}] '{step.label}': dwell {step.dwell_s:g} s outside the analyzer's sweep times "
+                        f"{profile.min_sweep_time_s:g}-{profile.max_sweep_time_s:g} s"), "steps", i, "dwell")
 
 
 def _tables_by_step(sequence, bench) -> dict:
