@@ -230,7 +230,12 @@ class Bench(_Model):
     transducers: Optional[Transducers] = None
     board: Optional[Board] = None
     supply: Optional[SupplySection] = None
-    source_path: Optional[Path] = Field(None, exclude=True)
+    _source_path: Optional[Path] = pydantic.PrivateAttr(None)
+
+    @property
+    def source_path(self) -> Optional[Path]:
+        """The bench file this was read from (relative profile paths resolve against its folder)."""
+        return self._source_path
 
     @pydantic.model_validator(mode="after")
     def _tools(self) -> "Bench":
@@ -281,4 +286,5 @@ def load_bench(path: str | Path, *, check_files: bool = True) -> Bench:
         bench = Bench.model_validate(source.data, context=context)
     except pydantic.ValidationError as exc:
         raise validation_to_config_error(source, exc, Bench) from None
-    return bench.model_copy(update={"source_path": Path(path)})
+    bench._source_path = Path(path)
+    return bench
