@@ -203,6 +203,15 @@ def _dynamic_handler(prep):
     return handler
 
 
+def _log_console():
+    """The console the log records go to, so a live progress bar and log lines do not tear."""
+    for handler in logging.getLogger("bench").handlers:
+        console = getattr(handler, "console", None)
+        if console is not None:
+            return console
+    return None
+
+
 def _connector(prep):
     """``connect() -> Station`` for the instruments the plan needs."""
     from bench.station import connect_station
@@ -216,7 +225,7 @@ def _connector(prep):
 def _execute(prep, store: RunStore, plots: bool, station=None) -> None:
     plan = prep.plan
     live = sys.stderr.isatty()
-    progress = Progress(len(plan.actions), plan.total_time_s, live=live)
+    progress = Progress(len(plan.actions), plan.total_time_s, live=live, console=_log_console())
     retry = RetryPolicy(first_delay_s=0.05, attempts=5) if prep.sim is not None else RetryPolicy()
     executor = Executor(plan, store, _connector(prep), progress=progress, retry=retry,
                         on_step_done=_step_hook(prep, store.folder, plots), dynamic=_dynamic_handler(prep))
