@@ -411,7 +411,8 @@ def test_ctrl_c_keeps_a_resumable_run(tmp_path):
     runs = tmp_path / "runs"
     proc = subprocess.Popen([sys.executable, "-c", "import sys; from bench.cli import main; sys.exit(main())",
                              "run", str(seq), "--sim", "--no-plots", "--out", str(runs)],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            cwd=tmp_path)  # not the repository: its bench/ folder would shadow the install
     try:
         deadline = time.monotonic() + 60
         # wait for a condition (traces committed), not for a time window

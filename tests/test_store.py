@@ -96,7 +96,8 @@ def test_kill_minus_9_loses_at_most_the_trace_in_flight(tmp_path):
             print(i, flush=True)
             i += 1
     """)
-    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True)
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True,
+                            cwd=tmp_path)  # not the repository: its bench/ folder would shadow the install
     folder = proc.stdout.readline().strip()
     last = -1
     while last < 40:
