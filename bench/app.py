@@ -159,12 +159,14 @@ def _print_results(folder: Path) -> None:
     run = open_run(folder)
     try:
         results = run.results()
-        warnings = [t for lvl, t in zip(run.events()["level"], run.events()["text"]) if lvl == "warning"]
+        events = run.events()
+        finals = {s["label"] for s in run.manifest().get("steps", []) if s.get("kind") == "final"}
     finally:
         run.close()
+    warnings = list(events.loc[events["level"] == "warning", "text"])
     console = Console(width=None if sys.stdout.isatty() else 132)
     # the screen shows what needs attention: suspects, ambient signals and the final readings
-    results = results[(results.status != "pass") | (results.step_label.isin(_final_labels(folder)))]
+    results = results[(results.status != "pass") | (results.step_label.isin(finals))]
     if not results.empty:
         table = Table(title="results (levels corrected through the transducer chain)")
         for col in ("step", "MHz", "level", "detector", "limit", "margin dB", "pol", "height m", "az deg", "status"):
@@ -179,16 +181,6 @@ def _print_results(folder: Path) -> None:
     if len(warnings) > 10:
         console.print(f"... {len(warnings) - 10} more warnings in the run's events (report.html)")
     print(ESTIMATE_LINE)
-
-
-def _final_labels(folder: Path) -> set[str]:
-    from bench.store import open_run
-
-    run = open_run(folder)
-    try:
-        return {s["label"] for s in run.manifest().get("steps", []) if s.get("kind") == "final"}
-    finally:
-        run.close()
 
 
 def _num(value, digits: int) -> str:

@@ -30,28 +30,9 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
-def _chain_files(bench, step) -> tuple[list[tuple[str, Path]], str, dict]:
-    """(role, source path) of each table a step's results go through, the corrected unit, extras."""
-    kind = step.kind
-    if kind == "grid":
-        probe = bench.probes[step.probe]
-        unit = "dbua_per_m" if probe.kind == "h-loop" else "dbuv_per_m"
-        return [("probe_factor", Path(probe.factor))], unit, {"probe": step.probe, "probe_kind": probe.kind}
-    if bench.transducers is None:
-        return [], "dbuv", {}
-    if kind in ("ambient", "sweep", "prescan", "final"):
-        files = [("antenna_factor", Path(bench.transducers.antenna))]
-        files += [("cable_loss", Path(c)) for c in bench.transducers.cables]
-        if bench.transducers.preamp is not None:
-            files.append(("preamp_gain", Path(bench.transducers.preamp)))
-        extra = {"distance_m": bench.site.distance_m} if bench.site is not None else {}
-        return files, "dbuv_per_m", extra
-    return [], "dbuv", {}
-
-
 def build_manifest(prep, *, simulated: bool) -> tuple[dict, list[tuple[Path, str]]]:
     """Manifest dict and the (source, name in tables/) files to copy into the run folder."""
-    from bench.station import resolve_limit
+    from bench.station import resolve_limit, step_chain
 
     copies: dict[Path, str] = {}
     steps = []
@@ -65,7 +46,7 @@ def build_manifest(prep, *, simulated: bool) -> tuple[dict, list[tuple[Path, str
         return "tables/" + copies.setdefault(src, f"{len(copies):02d}-{src.name}")
 
     for step in prep.sequence.steps:
-        files, unit, extra = _chain_files(prep.bench, step)
+        files, unit, extra = step_chain(prep.bench, step)
         chain = []
         for role, src in files:
             name = copies.setdefault(src, f"{len(copies):02d}-{src.name}")

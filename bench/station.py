@@ -137,7 +137,8 @@ def preflight(plan, sequence, bench, profiles: dict, *, sequence_dir: Path | Non
         if step.kind == "ambient" and getattr(bench, "supply", None) is None:
             raise _at(PlanError(f"steps[{i}] '{step.label}': an ambient capture needs the board switched off, and "
                             "the bench file has no [supply] to do it unattended"), "steps", i)
-    for label, files in _tables_by_step(sequence, bench).items():
+    for step in sequence.steps:
+        label, files = step.label, step_chain(bench, step)[0]
         span = _step_span(plan, label)
         if span is None:
             continue
@@ -179,19 +180,38 @@ def _check_addresses(bench) -> None:
                             f"GPIB0::n::INSTR, ...), a serial device path or a socket:// URL, found {address!r}")
 
 
-def _step_unit(step, bench) -> str:
-    """The unit a step's readings have after its transducer chain (as the run stores them)."""
+def step_chain(bench, step) -> tuple[list[tuple[str, Path]], str, dict]:
+    """The transducer tables a step's readings go through, the unit they end in, and extras.
+
+    Returns
+    -------
+    files : list of (role, path)
+        Probe factor for a grid step; antenna factor, cables and preamp otherwise (when the
+        bench file has ``[transducers]``).
+    unit : str
+        ``dbua_per_m`` (H loop), ``dbuv_per_m`` (E probe, antenna chain) or ``dbuv`` (no chain).
+    extra : dict
+        Manifest extras: probe name and kind, or the site distance.
+    """
     if step.kind == "grid":
-        probe = bench.probes.get(step.probe)
-        return "dbua_per_m" if probe is not None and probe.kind == "h-loop" else "dbuv_per_m"
-    return "dbuv_per_m" if bench.transducers is not None else "dbuv"
+        probe = bench.probes[step.probe]
+        unit = "dbua_per_m" if probe.kind == "h-loop" else "dbuv_per_m"
+        return [("probe_factor", Path(probe.factor))], unit, {"probe": step.probe, "probe_kind": probe.kind}
+    if bench.transducers is None:
+        return [], "dbuv", {}
+    files = [("antenna_factor", Path(bench.transducers.antenna))]
+    files += [("cable_loss", Path(c)) for c in bench.transducers.cables]
+    if bench.transducers.preamp is not None:
+        files.append(("preamp_gain", Path(bench.transducers.preamp)))
+    extra = {"distance_m": bench.site.distance_m} if bench.site is not None else {}
+    return files, "dbuv_per_m", extra
 
 
 def _check_limit_fits(i: int, step, limit_set, plan, bench) -> None:
     """A limit in the step's unit that covers at least part of its sweep (else a silent pass)."""
     import numpy as np
 
-    unit = _step_unit(step, bench)
+    unit = step_chain(bench, step)[1]
     if limit_set.quantity != unit:
         raise _at(PlanError(f"steps[{i}] '{step.label}': limit {limit_set.name!r} is in {limit_set.quantity}, but the "
                         f"step's readings are in {unit} after its transducer chain"), "steps", i, "limit")
@@ -214,22 +234,6 @@ def _check_final(i: int, step, sequence, profile) -> None:
     if not profile.min_sweep_time_s <= step.dwell_s <= profile.max_sweep_time_s:
         raise _at(PlanError(f"steps[{i}] '{step.label}': dwell {step.dwell_s:g} s outside the analyzer's sweep times "
                         f"{profile.min_sweep_time_s:g}-{profile.max_sweep_time_s:g} s"), "steps", i, "dwell")
-
-
-def _tables_by_step(sequence, bench) -> dict:
-    out = {}
-    for step in sequence.steps:
-        if step.kind == "grid":
-            probe = bench.probes.get(step.probe)
-            if probe is not None:
-                out[step.label] = [("probe_factor", probe.factor)]
-        elif bench.transducers is not None:
-            files = [("antenna_factor", bench.transducers.antenna)]
-            files += [("cable_loss", c) for c in bench.transducers.cables]
-            if bench.transducers.preamp is not None:
-                files.append(("preamp_gain", bench.transducers.preamp))
-            out[step.label] = files
-    return out
 
 
 def _step_span(plan, label: str):
