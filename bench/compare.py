@@ -18,12 +18,13 @@ import numpy as np
 import pandas as pd
 
 from bench import plots
-from bench.analysis import maps as maps_mod
+from bench.analysis.maps import MapChange, compare_maps
 from bench.analysis import runview
 from bench.analysis.peaks import find_peaks_hz
 from bench.units import format_hz
 from bench.errors import AnalysisError, BenchError
-from bench.report import (DISCLAIMER, embed_png, esc, html_table, page, safe_name)
+from bench.htmlkit import DISCLAIMER, embed_png, esc, html_table, page, safe_name
+from bench.steps import KINDS
 from bench.store import open_run
 
 __all__ = ["MATCH_COLUMNS", "MapChange", "compare_maps", "compare_runs", "compare_spectra", "match_suspects",
@@ -167,51 +168,6 @@ def match_suspects(before: pd.DataFrame, after: pd.DataFrame, rbw_hz: float) -> 
     return table.iloc[np.argsort(order.to_numpy(float), kind="stable")].reset_index(drop=True)
 
 
-@dataclass
-class MapChange:
-    """Change of the combined map on the grid nodes both runs measured.
-
-    Attributes
-    ----------
-    x_m, y_m : numpy.ndarray
-        Common grid axes in m.
-    delta_db : numpy.ndarray
-        After minus before, shape ``(len(y_m), len(x_m))``, NaN where either is missing.
-    """
-
-    x_m: np.ndarray
-    y_m: np.ndarray
-    delta_db: np.ndarray
-
-
-def _common(axis_a: np.ndarray, axis_b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    ia, ib = [], []
-    for i, v in enumerate(axis_a):
-        j = np.flatnonzero(np.abs(axis_b - v) <= 1e-6)
-        if j.size:
-            ia.append(i)
-            ib.append(int(j[0]))
-    return axis_a[ia], np.array(ia, int), np.array(ib, int)
-
-
-def compare_maps(before, after) -> MapChange:
-    """Combined-map change (after minus before, dB) on the grid nodes common to both.
-
-    Raises
-    ------
-    AnalysisError
-        Different units, or no common grid node.
-    """
-    if before.unit != after.unit:
-        raise AnalysisError(f"maps in different units: before {before.unit}, after {after.unit}")
-    x, xb, xa = _common(before.x_m, after.x_m)
-    y, yb, ya = _common(before.y_m, after.y_m)
-    if x.size == 0 or y.size == 0:
-        raise AnalysisError("the two grids share no position (compare scans of the same area)")
-    delta = after.combined[np.ix_(ya, xa)] - before.combined[np.ix_(yb, xb)]
-    return MapChange(x, y, delta)
-
-
 # ----------------------------------------------------------------------------- run comparison
 
 
@@ -343,28 +299,6 @@ def _mhz(value):
     return (None if value is None or not np.isfinite(value) else value / 1e6), ".4f"
 
 
-def _grid_parts(run_b, run_a, label: str, out: Path, outline) -> list[str]:
-    maps_b, maps_a = maps_mod.grid_maps(run_b, label), maps_mod.grid_maps(run_a, label)
-    change = compare_maps(maps_b, maps_a)
-    path = plots.delta_map_png(out / f"{safe_name(label)}-map-change.png", change.x_m,
-                               change.y_m, change.delta_db,
-                               title=f"{label}: combined map change ({maps_a.what})",
-                               outline_m=outline)
-    parts = [embed_png(path, f"map change of {label}")]
-    if np.any(np.isfinite(change.delta_db)):
-        iy, ix = np.unravel_index(int(np.nanargmin(change.delta_db)), change.delta_db.shape)
-        parts.append(f"<p>Largest map improvement {change.delta_db[iy, ix]:+.1f} dB at x = "
-                     f"{change.x_m[ix] * 1e3:.1f} mm, y = {change.y_m[iy] * 1e3:.1f} mm.</p>")
-    fmt = {"freq_hz": _mhz, "level": ".2f", "x_m": lambda v: (v * 1e3, ".1f"),
-           "y_m": lambda v: (v * 1e3, ".1f"), "rotation_deg": ".0f", "prominence_db": ".1f"}
-    heads = (("freq_hz", "frequency (MHz)"), ("level", "level"), ("x_m", "x (mm)"),
-             ("y_m", "y (mm)"), ("rotation_deg", "rotation (deg)"))
-    for name, run in (("before", run_b), ("after", run_a)):
-        spots = maps_mod.hot_spots(run, label)
-        parts.append(f"<h4>Hot spots {name}</h4>" + html_table(spots, heads, formats=fmt))
-    return parts
-
-
 def _common_labels(run_b, run_a) -> list[str]:
     before = set(runview.step_labels(run_b))
     return [lb for lb in runview.step_labels(run_a) if lb in before
@@ -432,9 +366,9 @@ def _write_comparison(run_b, run_a, labels, out: Path) -> Path:
                     "freq_before_hz": _mhz, "freq_after_hz": _mhz, "level_before": ".2f",
                     "level_after": ".2f", "delta_db": "+.2f", "margin_before_db": ".2f",
                     "margin_after_db": ".2f", "delta_margin_db": "+.2f"}))
-        if kind == "grid":
+        if kind in KINDS:
             outline = run_a.manifest().get("board", {}).get("outline_m")
-            body += _grid_parts(run_b, run_a, label, out, outline)
+            body += KINDS[kind].compare_parts(run_b, run_a, label, out, outline)
         sections.append("".join(body))
     path = out / "compare.html"
     path.write_text(_page(run_b, run_a, summary, sections), encoding="utf-8")

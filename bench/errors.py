@@ -12,7 +12,9 @@
     │   ├── ReplyTimeoutError       no (complete) reply before the deadline
     │   └── BlockFormatError        an IEEE 488.2 block was truncated or malformed
     ├── StoreError                  the run folder cannot be read or written
-    └── AnalysisError               data cannot be analysed as asked (table does not cover a sweep)
+    ├── AnalysisError               data cannot be analysed as asked (table does not cover a sweep)
+    └── RunInterrupted              a run stopped before its end and is kept (exit code 3)
+        └── OperatorStop            Ctrl-C or SIGTERM stopped the run (exit code 130)
 
 pyvisa and pyserial exceptions are translated where they enter (``bench.transports``) with
 ``raise ... from exc``; nothing above the transports sees a foreign exception.
@@ -30,7 +32,9 @@ __all__ = [
     "ConfigError",
     "InstrumentError",
     "PlanError",
+    "OperatorStop",
     "ReplyTimeoutError",
+    "RunInterrupted",
     "SafetyLimitError",
     "StoreError",
     "TransportError",
@@ -137,3 +141,18 @@ class AnalysisError(BenchError):
     """Data cannot be analysed as asked (e.g. a transducer table does not cover the sweep)."""
 
     exit_code = 2
+
+
+class RunInterrupted(BenchError):
+    """The run stopped before its end (faults exhausted the retries); it is kept and resumable.
+
+    The message says how to continue it once the engine knows the run folder.
+    """
+
+    exit_code = 3
+
+
+class OperatorStop(RunInterrupted):
+    """Ctrl-C or SIGTERM during a run: the run is kept and can be resumed."""
+
+    exit_code = 130

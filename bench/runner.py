@@ -1,8 +1,10 @@
-"""A whole run: manifest, tables copied for provenance, executor, step analysis, plots, report.
+"""A whole run: manifest, tables copied for provenance, executor, step analysis.
 
 ``execute_new_run`` is what ``bench run`` does after the checks passed; ``resume_run`` is
-``bench resume``: it reloads the sequence and bench as they were (refusing if either file has
-changed since), rebuilds the same plan and carries on from the first action not done.
+``bench resume``: :func:`resumable_files` refuses a sequence or bench file that changed since,
+the caller rebuilds the same plan, and the run carries on from the first action not done.
+After the last action of each step the step's kind analyses it; a dynamic action (the finals)
+is carried out by its kind through the executor's narrow measuring interface.
 """
 
 from __future__ import annotations
@@ -12,16 +14,18 @@ import logging
 import shutil
 import sys
 import time
-from contextlib import ExitStack
 from pathlib import Path
 
 from bench import __version__
-from bench.errors import BenchError, ConfigError
+from bench.errors import BenchError, ConfigError, OperatorStop, RunInterrupted
+from bench.executor import Executor, RetryPolicy
+from bench.instruments import connect_station, needs_of
+from bench.preflight import resolve_limit
 from bench.progress import Progress
-from bench.run import Executor, RetryPolicy, RunInterrupted
+from bench.steps import kind_of
 from bench.store import RunStore, create_run, open_run
 
-__all__ = ["execute_new_run", "resume_run", "build_manifest"]
+__all__ = ["execute_new_run", "resume_run", "resumable_files", "build_manifest"]
 
 log = logging.getLogger("bench.run")
 
@@ -30,64 +34,66 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
-def build_manifest(prep, *, simulated: bool) -> tuple[dict, list[tuple[Path, str]]]:
+def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, str]]]:
     """Manifest dict and the (source, name in tables/) files to copy into the run folder."""
-    from bench.station import resolve_limit, step_chain
-
     copies: dict[Path, str] = {}
     steps = []
-    seq_dir = Path(prep.sequence_path).parent
 
     def limit_entry(name: str) -> str:
-        resolved = resolve_limit(name, seq_dir)
+        resolved = resolve_limit(name, session.sequence_dir)
         if resolved == name and not Path(name).suffix:
             return name  # built-in limit
         src = Path(resolved)
         return "tables/" + copies.setdefault(src, f"{len(copies):02d}-{src.name}")
 
-    for step in prep.sequence.steps:
-        files, unit, extra = step_chain(prep.bench, step)
-        chain = []
-        for role, src in files:
-            name = copies.setdefault(src, f"{len(copies):02d}-{src.name}")
-            chain.append({"role": role, "file": f"tables/{name}"})
-        entry = {"label": step.label, "kind": step.kind, "unit": unit, "chain": chain, **extra}
-        for key in ("sweep", "ambient", "of"):
-            value = getattr(step, key, None)
-            if value is not None:
-                entry[key] = value
-        if getattr(step, "limit", None) is not None:
-            entry["limit"] = limit_entry(step.limit)
-        if step.kind == "prescan":
-            entry["margin_db"] = step.margin_db
-        if step.kind == "final":
-            prescan = prep.sequence.step(step.of)
-            entry["limit"] = limit_entry(prescan.limit)
-            entry["sweep"] = prescan.sweep
-        steps.append(entry)
+    for step in session.sequence.steps:
+        steps.append(_manifest_step(session, step, copies, limit_entry))
     manifest = {
-        "name": prep.sequence.name,
+        "name": session.sequence.name,
         "software": f"emission-bench {__version__}",
         "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "state": "running",
         "simulated": simulated,
-        "sequence": {"path": str(Path(prep.sequence_path).resolve()), "sha256": _sha256(prep.sequence_path),
-                     "text": Path(prep.sequence_path).read_text(encoding="utf-8")},
-        "bench": {"path": str(Path(prep.bench_path).resolve()), "sha256": _sha256(prep.bench_path),
-                  "text": Path(prep.bench_path).read_text(encoding="utf-8")},
-        "plan": prep.plan.summary_lines(),
+        "sequence": _file_entry(session.sequence_path),
+        "bench": _file_entry(session.bench_path),
+        "plan": session.plan.summary_lines(),
         "steps": steps,
     }
-    board = getattr(prep.bench, "board", None)
-    if board is not None and board.outline_m:
-        manifest["board"] = {"outline_m": [list(p) for p in board.outline_m]}
-        if board.photo is not None:
-            name = f"board-photo{Path(board.photo).suffix}"
-            copies[Path(board.photo)] = f"../{name}"
-            manifest["board"]["photo"] = name
-            manifest["board"]["photo_points"] = [{"pixel": list(p.pixel), "board_m": list(p.board_m)}
-                                                 for p in board.photo_points]
+    _board_entry(session.bench, manifest, copies)
     return manifest, list(copies.items())
+
+
+def _file_entry(path: Path) -> dict:
+    return {"path": str(Path(path).resolve()), "sha256": _sha256(path),
+            "text": Path(path).read_text(encoding="utf-8")}
+
+
+def _manifest_step(session, step, copies: dict, limit_entry) -> dict:
+    kind = kind_of(step)
+    files, unit, extra = kind.chain(session.bench, step)
+    chain = []
+    for role, src in files:
+        name = copies.setdefault(src, f"{len(copies):02d}-{src.name}")
+        chain.append({"role": role, "file": f"tables/{name}"})
+    entry = {"label": step.label, "kind": step.kind, "unit": unit, "chain": chain, **extra,
+             **kind.manifest_entry(session.sequence, step)}
+    limit = kind.limit_name(session.sequence, step)
+    if limit is not None:
+        entry["limit"] = limit_entry(limit)
+    return entry
+
+
+def _board_entry(bench, manifest: dict, copies: dict) -> None:
+    board = getattr(bench, "board", None)
+    if board is None or not board.outline_m:
+        return
+    manifest["board"] = {"outline_m": [list(p) for p in board.outline_m]}
+    if board.photo is not None:
+        name = f"board-photo{Path(board.photo).suffix}"
+        copies[Path(board.photo)] = f"../{name}"
+        manifest["board"]["photo"] = name
+        manifest["board"]["photo_points"] = [{"pixel": list(p.pixel), "board_m": list(p.board_m)}
+                                             for p in board.photo_points]
 
 
 def _copy_tables(folder: Path, copies) -> None:
@@ -109,79 +115,38 @@ class _RunLog:
         self.handler.close()
 
 
-def _needs(plan) -> set[str]:
-    needs = {"analyzer"}
-    for a in plan.actions:
-        if not a.board_powered:
-            needs.add("supply")
-        pose = a.pose
-        if pose is not None and hasattr(pose, "tool"):
-            needs.add("stage")
-        if pose is not None and (getattr(pose, "height_m", None) is not None
-                                 or getattr(pose, "polarization", None) is not None):
-            needs.add("mast")
-        if pose is not None and getattr(pose, "azimuth_deg", None) is not None:
-            needs.add("turntable")
-        if a.dynamic:
-            needs.update({"mast", "turntable"})
-    return needs
+class _StepRun:
+    """What step kinds' hooks see during a run (:class:`bench.steps.base.StepContext`)."""
+
+    def __init__(self, session, store: RunStore) -> None:
+        self.session = session
+        self.store = store
+        self.sequence = session.sequence
+        self.bench = session.bench
+
+    def limit(self, name: str):
+        return self.session.limit(name)
+
+    def note(self, level: str, text: str) -> None:
+        self.store.log_event(level, text)
+        log.log(logging.WARNING if level == "warning" else logging.INFO, text)
 
 
-def _step_hook(prep, folder: Path, plots: bool):
-    """After each step: far-field analysis of a prescan."""
-    seq = prep.sequence
+def _hooks(session, store: RunStore):
+    """(after each step, dynamic action) callbacks that dispatch to the step kinds."""
+    ctx = _StepRun(session, store)
 
-    def hook(executor, action) -> None:
-        step = seq.step(action.step_label)
-        if step.kind == "prescan":
-            from bench.farfield import analyze_prescan  # scipy.signal only when a prescan needs it
+    def after_step(action) -> None:
+        step = session.sequence.step(action.step_label)
+        line = kind_of(step).after_step(ctx, step)
+        if line:
+            log.info(line)
 
-            ctx = _farfield_context(prep, executor.store, step.limit)
-            table = analyze_prescan(executor.store, step, ctx)
-            counts = table["status"].value_counts().to_dict() if len(table) else {}
-            log.info("prescan %s: %s", step.label, ", ".join(f"{v} {k}" for k, v in counts.items()) or "no peaks")
+    def dynamic(action, measurer) -> None:
+        step = session.sequence.step(action.step_label)
+        kind_of(step).run_dynamic(ctx, step, measurer)
 
-    return hook
-
-
-def _farfield_context(prep, store, limit_name):
-    from bench.farfield import FarFieldContext, limit_for_site
-    from bench.station import resolve_limit
-
-    distance = prep.bench.site.distance_m if prep.bench.site is not None else 3.0
-    limit, notes = limit_for_site(resolve_limit(limit_name, Path(prep.sequence_path).parent), distance)
-    for n in notes:
-        store.log_event("info", n)
-        log.info(n)
-    chain = _far_chain(store)
-    eut = prep.bench.site.eut_size_m if prep.bench.site is not None else None
-    return FarFieldContext(chain=chain, limit=limit, distance_m=distance, eut_size_m=eut)
-
-
-def _far_chain(store):
-    """The far-field chain from the tables copied into the run folder."""
-    from bench.analysis.transducers import TransducerChain, load_table
-
-    for step in store.manifest().get("steps", []):
-        if step.get("kind") in ("prescan", "sweep", "ambient", "final") and step.get("chain"):
-            tables = tuple(load_table(store.folder / c["file"], role=c["role"]) for c in step["chain"])
-            return TransducerChain(tables)
-    return None
-
-
-def _dynamic_handler(prep):
-    from bench.farfield import run_finals
-
-    def handler(executor, action) -> None:
-        step = prep.sequence.step(action.step_label)
-        prescan = prep.sequence.step(step.of)
-        sweep = prep.sequence.sweeps[prescan.sweep]
-        ctx = _farfield_context(prep, executor.store, prescan.limit)
-        mast = prep.bench.mast.height_limits_m if prep.bench.mast is not None else (1.0, 4.0)
-        table = prep.bench.turntable.azimuth_limits_deg if prep.bench.turntable is not None else (0.0, 360.0)
-        run_finals(executor, action, step, prescan, sweep, ctx, mast, table)
-
-    return handler
+    return after_step, dynamic
 
 
 def _log_console():
@@ -193,83 +158,80 @@ def _log_console():
     return None
 
 
-def _connector(prep):
+def _connector(session):
     """``connect() -> Station`` for the instruments the plan needs."""
-    from bench.station import connect_station
+    steps = [(kind_of(step), step) for step in session.sequence.steps]
+    needs = needs_of(session.plan, steps)
+    wait = session.sim.wait if session.sim is not None else time.sleep
+    poll_sleep = (lambda s: None) if session.sim is not None else None
+    return lambda: connect_station(session.bench, session.profiles, needs=needs, wait=wait,
+                                   poll_sleep=poll_sleep)
 
-    needs = _needs(prep.plan)
-    wait = prep.sim.wait if prep.sim is not None else time.sleep
-    poll_sleep = (lambda s: None) if prep.sim is not None else None
-    return lambda: connect_station(prep.bench, needs=needs, wait=wait, poll_sleep=poll_sleep)
 
-
-def _execute(prep, store: RunStore, plots: bool, station=None) -> None:
-    plan = prep.plan
-    live = sys.stderr.isatty()
-    progress = Progress(len(plan.actions), plan.total_time_s, live=live, console=_log_console())
-    retry = RetryPolicy(first_delay_s=0.05, attempts=5) if prep.sim is not None else RetryPolicy()
-    executor = Executor(plan, store, _connector(prep), progress=progress, retry=retry,
-                        on_step_done=_step_hook(prep, store.folder, plots), dynamic=_dynamic_handler(prep))
+def _execute(session, store: RunStore, station=None) -> None:
+    plan = session.plan
+    progress = Progress(len(plan.actions), plan.total_time_s, live=sys.stderr.isatty(),
+                        console=_log_console())
+    retry = RetryPolicy(first_delay_s=0.05, attempts=5) if session.sim is not None else RetryPolicy()
+    after_step, dynamic = _hooks(session, store)
+    executor = Executor(plan, store, _connector(session), progress=progress, retry=retry,
+                        on_step_done=after_step, dynamic=dynamic)
     if station is not None:
         executor.station = station
         executor.identities.update(station.identities)
     runlog = _RunLog(store.folder)
-    hint = f"'bench resume {store.folder}{' --sim' if prep.sim is not None else ''}'"
+    hint = f"'bench resume {store.folder}{' --sim' if session.sim is not None else ''}'"
     try:
         executor.run()
     except KeyboardInterrupt:
         store.update_manifest(state="interrupted", interrupted_reason="stopped by the operator")
-        from bench.app import OperatorStop
-
         raise OperatorStop(f"stopped by the operator; the run is kept: continue it with {hint}") from None
-    except BenchError as exc:
-        if not isinstance(exc, RunInterrupted):
-            # the run cannot go on (e.g. the instrument refused a setting): keep what was measured
-            store.update_manifest(state="interrupted", interrupted_reason=str(exc))
-            raise
+    except RunInterrupted as exc:
         store.update_manifest(state="interrupted", interrupted_reason=str(exc))
-        from bench.app import RunInterruptedExit
-
-        raise RunInterruptedExit(f"{exc}; the run is kept: continue it with {hint}") from exc
+        raise RunInterrupted(f"{exc}; the run is kept: continue it with {hint}") from exc
+    except BenchError as exc:
+        # the run cannot go on (e.g. the instrument refused a setting): keep what was measured
+        store.update_manifest(state="interrupted", interrupted_reason=str(exc))
+        raise
     finally:
         progress.close()
         runlog.close()
+    _finish(store, executor)
+
+
+def _finish(store: RunStore, executor: Executor) -> None:
     store.update_manifest(state="complete", instruments=executor.identities, faults_recovered=executor.faults)
     results = store.results()
     if not results.empty:
         results.to_csv(store.folder / "results.csv", index=False)
     store.checkpoint()
-    if plots:
-        from bench.report import write_report
-
-        path = write_report(store)
-        log.info("report: %s", path)
 
 
-def execute_new_run(prep, *, out_root: Path, plots: bool = True) -> Path:
+def execute_new_run(session, *, out_root: Path) -> Path:
     """Create the run folder and carry out the plan. Returns the run folder."""
-    manifest, copies = build_manifest(prep, simulated=prep.sim is not None)
+    manifest, copies = build_manifest(session, simulated=session.sim is not None)
     # connect before creating the run folder: an unreachable bench leaves nothing behind
-    station = _connector(prep)()
+    station = _connector(session)()
     try:
-        store = create_run(Path(out_root), prep.sequence.name, manifest)
+        store = create_run(Path(out_root), session.sequence.name, manifest)
     except BaseException:
         station.close()
         raise
     try:
         store.lock()
         _copy_tables(store.folder, copies)
-        _execute(prep, store, plots, station=station)
+        _execute(session, store, station=station)
     finally:
         store.close()
     return store.folder
 
 
-def resume_run(folder: Path, *, bench_path: Path | None, sim: bool, board=None, seed: int = 1,
-               realtime: bool = False, plots: bool = True, stack: ExitStack | None = None) -> Path:
-    """Continue an interrupted run from the first action not done."""
-    from bench.app import prepare
+def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Path, dict]:
+    """The sequence and bench files a run may resume with, after checking they did not change.
 
+    Returns (sequence path, bench path, manifest). ``bench_path`` given means resuming on
+    purpose with another bench file.
+    """
     ro = open_run(folder)
     manifest = ro.manifest()
     ro.close()
@@ -283,14 +245,17 @@ def resume_run(folder: Path, *, bench_path: Path | None, sim: bool, board=None, 
     if bench_path is None and (not bench_file.is_file() or _sha256(bench_file) != manifest["bench"]["sha256"]):
         raise ConfigError(f"{bench_file}: the bench file changed or is missing since the run started; "
                           "pass --bench to resume on purpose with another one")
-    prep = prepare(seq_path, bench_path=bench_file, sim=sim or bool(manifest.get("simulated") and bench_path is None),
-                   board=board, seed=seed, realtime=realtime, stack=stack)
+    return seq_path, bench_file, manifest
+
+
+def resume_run(session, folder: Path, *, resumed: int) -> Path:
+    """Continue an interrupted run from the first action not done."""
     store = RunStore(Path(folder))
     try:
         store.lock()
-        store.update_manifest(state="running", resumed=int(manifest.get("resumed", 0)) + 1)
+        store.update_manifest(state="running", resumed=resumed + 1)
         store.log_event("info", "resumed")
-        _execute(prep, store, plots)
+        _execute(session, store)
     finally:
         store.close()
     return Path(folder)

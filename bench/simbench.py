@@ -153,17 +153,13 @@ def start_simulated_bench(bench, *, board: Path | None = None, seed: int = 1, re
     return sim, bench.model_copy(update=update)
 
 
-def serve_forever(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False) -> int:
-    """``bench sim``: serve until interrupted, printing the addresses first."""
+def serve_forever(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False,
+                  announce=None) -> int:
+    """``bench sim``: serve until interrupted; ``announce(addresses)`` is called once serving."""
     sim = SimulatedBench(_load_board(board), seed=seed, realtime=realtime, analyzer_port=port)
     addresses = sim.start()
-    print(f"analyzer   {addresses['analyzer']}", flush=True)
-    print(f"stage      {addresses['stage']}", flush=True)
-    print(f"stage-pty  {addresses['stage_pty']}", flush=True)
-    print(f"mast       {addresses['mast']}", flush=True)
-    print(f"turntable  {addresses['turntable']}", flush=True)
-    print(f"supply     {addresses['supply']}", flush=True)
-    print("simulated bench running; Ctrl-C stops it", flush=True)
+    if announce is not None:
+        announce(addresses)
     stop = threading.Event()
     signal.signal(signal.SIGTERM, lambda *_: stop.set())
     try:

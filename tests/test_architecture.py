@@ -74,6 +74,7 @@ def test_error_tree_public_names():
     assert set(errors.__all__) == {
         "AnalysisError", "BenchError", "BlockFormatError", "ConfigError", "InstrumentError", "PlanError",
         "ReplyTimeoutError", "SafetyLimitError", "StoreError", "TransportError", "UnitError",
+        "RunInterrupted", "OperatorStop",
     }
     for name in errors.__all__:
         assert issubclass(getattr(errors, name), errors.BenchError)

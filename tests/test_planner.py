@@ -13,7 +13,8 @@ from matplotlib.path import Path as MplPath
 
 from bench.benchfile import load_bench
 from bench.errors import PlanError, SafetyLimitError
-from bench.planner import (
+from bench.planner import make_plan
+from bench.planning import (
     AnalyzerCaps,
     BenchCaps,
     FarFieldPose,
@@ -23,9 +24,6 @@ from bench.planner import (
     StagePose,
     TurntableCaps,
     bench_caps,
-    grid_positions,
-    inside_polygon,
-    make_plan,
     scalloping_db,
     segment_sweep,
     stage_move_time_s,
@@ -33,6 +31,7 @@ from bench.planner import (
     transfer_time_s,
     trapezoid_move_time_s,
 )
+from bench.steps.grid import grid_positions, inside_polygon
 from bench.sequence import load_sequence
 
 DEMO = Path(__file__).parent.parent / "sequences"

@@ -20,7 +20,7 @@ from bench.analysis.runview import _raw_unit_offset_db, _step_unit, step_chain, 
 from bench.errors import AnalysisError
 from bench.units import format_hz
 
-__all__ = ["GridMaps", "HOT_SPOT_COLUMNS", "grid_maps", "hot_spots", "power_sum_db"]
+__all__ = ["GridMaps", "HOT_SPOT_COLUMNS", "MapChange", "compare_maps", "grid_maps", "hot_spots", "power_sum_db"]
 
 #: Columns of the table returned by :func:`hot_spots`.
 HOT_SPOT_COLUMNS = ("freq_hz", "level", "x_m", "y_m", "rotation_deg", "prominence_db")
@@ -268,3 +268,48 @@ def hot_spots(run, label: str, *, top: int = 10, prominence_db: float = 6.0,
     }, columns=list(HOT_SPOT_COLUMNS))
     table = table.sort_values("level", ascending=False, kind="stable")
     return table.head(top).reset_index(drop=True)
+
+
+@dataclass
+class MapChange:
+    """Change of the combined map on the grid nodes both runs measured.
+
+    Attributes
+    ----------
+    x_m, y_m : numpy.ndarray
+        Common grid axes in m.
+    delta_db : numpy.ndarray
+        After minus before, shape ``(len(y_m), len(x_m))``, NaN where either is missing.
+    """
+
+    x_m: np.ndarray
+    y_m: np.ndarray
+    delta_db: np.ndarray
+
+
+def _common(axis_a: np.ndarray, axis_b: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    ia, ib = [], []
+    for i, v in enumerate(axis_a):
+        j = np.flatnonzero(np.abs(axis_b - v) <= 1e-6)
+        if j.size:
+            ia.append(i)
+            ib.append(int(j[0]))
+    return axis_a[ia], np.array(ia, int), np.array(ib, int)
+
+
+def compare_maps(before, after) -> MapChange:
+    """Combined-map change (after minus before, dB) on the grid nodes common to both.
+
+    Raises
+    ------
+    AnalysisError
+        Different units, or no common grid node.
+    """
+    if before.unit != after.unit:
+        raise AnalysisError(f"maps in different units: before {before.unit}, after {after.unit}")
+    x, xb, xa = _common(before.x_m, after.x_m)
+    y, yb, ya = _common(before.y_m, after.y_m)
+    if x.size == 0 or y.size == 0:
+        raise AnalysisError("the two grids share no position (compare scans of the same area)")
+    delta = after.combined[np.ix_(ya, xa)] - before.combined[np.ix_(yb, xb)]
+    return MapChange(x, y, delta)

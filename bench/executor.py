@@ -8,8 +8,9 @@ resynchronises (``*CLS``, ``*IDN?``, the whole setup again, stage homed again) a
 action. When retries run out the run is marked ``interrupted`` and ``bench resume`` continues
 from the first action not done.
 
-Dynamic work (the final measurement of suspects found by a prescan) is delegated to
-:mod:`bench.finals`, which uses the same station and store.
+Dynamic work (the final measurement of suspects found by a prescan) is delegated to a
+handler that reaches the instruments only through :meth:`Executor.measurer`: a narrow
+interface that moves the mast and turntable and measures (and stores) one segment.
 """
 
 from __future__ import annotations
@@ -23,16 +24,12 @@ import numpy as np
 
 from bench import units
 from bench.drivers.analyzer import SweepSettings
-from bench.errors import BenchError, InstrumentError, PlanError, TransportError
+from bench.errors import InstrumentError, PlanError, RunInterrupted, TransportError
 from bench.store import RunStore, TraceMeta
 
-__all__ = ["Station", "Executor", "RetryPolicy", "RunInterrupted", "combine_sweeps"]
+__all__ = ["Executor", "RetryPolicy", "combine_sweeps"]
 
-log = logging.getLogger("bench.run")
-
-
-class RunInterrupted(BenchError):
-    """The run stopped before the end (faults exhausted the retries, or the operator stopped it)."""
+log = logging.getLogger("bench.executor")
 
 
 @dataclass(frozen=True)
@@ -55,7 +52,7 @@ def combine_sweeps(sweeps: list[np.ndarray], mode: str) -> np.ndarray:
 
     ``clear-write`` keeps the last, ``max-hold`` the point-wise maximum, ``average`` the mean of
     the dB values (log averaging, as a log-scaled trace average does: noise reads about 2.51 dB
-    below its RMS value, a CW line is unchanged; reference sheet §8).
+    below its RMS value, a CW line is unchanged; common practice).
     """
     if mode == "clear-write" or len(sweeps) == 1:
         return sweeps[-1]
@@ -65,35 +62,6 @@ def combine_sweeps(sweeps: list[np.ndarray], mode: str) -> np.ndarray:
     if mode == "average":
         return stack.mean(axis=0)
     raise PlanError(f"unknown trace mode {mode!r}")
-
-
-@dataclass
-class Station:
-    """The opened instruments of a bench. Built by a connector; closed and rebuilt on faults.
-
-    Attributes
-    ----------
-    analyzer : bench.drivers.analyzer.Analyzer
-    stage, mast, turntable, supply : drivers or None
-    identities : dict
-        ``*IDN?`` / banner of each instrument, for the manifest.
-    """
-
-    analyzer: object
-    stage: object | None = None
-    mast: object | None = None
-    turntable: object | None = None
-    supply: object | None = None
-    identities: dict = field(default_factory=dict)
-
-    def close(self) -> None:
-        for dev in (self.analyzer, self.stage, self.mast, self.turntable, self.supply):
-            if dev is None:
-                continue
-            try:
-                dev.close() if hasattr(dev, "close") else dev.transport.close()
-            except Exception:  # noqa: BLE001 - closing after a fault must not hide the fault
-                pass
 
 
 class Executor:
@@ -106,18 +74,20 @@ class Executor:
     store : RunStore
         Open run folder.
     connect : callable
-        ``connect() -> Station``: opens and initialises every instrument the plan needs.
+        ``connect() -> bench.instruments.Station``: opens and initialises every instrument the
+        plan needs.
     progress : bench.progress.Progress or None
     retry : RetryPolicy
     sleep : callable
         Used for back-off (injected in tests so they never sleep).
     on_step_done : callable, optional
-        ``f(executor, last_action)`` after the last action of each step (analysis, plots).
+        ``f(last_action)`` after the last action of each step (analysis).
     dynamic : callable, optional
-        ``f(executor, action)`` carries out a dynamic action (final measurement of suspects).
+        ``f(action, measurer)`` carries out a dynamic action (final measurement of suspects)
+        through :meth:`measurer`.
     """
 
-    def __init__(self, plan, store: RunStore, connect: Callable[[], Station], *, progress=None,
+    def __init__(self, plan, store: RunStore, connect: Callable[[], object], *, progress=None,
                  retry: RetryPolicy = RetryPolicy(), sleep: Callable[[float], None] = time.sleep,
                  on_step_done: Callable | None = None, dynamic: Callable | None = None) -> None:
         self.plan = plan
@@ -130,7 +100,7 @@ class Executor:
         self.dynamic = dynamic
         self.identities: dict = {}
         self.current_pose = None
-        self.station: Station | None = None
+        self.station = None
         self.faults = 0
         self._powered: bool | None = None
         self._tool: int | None = None
@@ -156,14 +126,14 @@ class Executor:
                     self.progress.advance(f"{action.step_kind} {action.step_label}", time.monotonic() - t0)
                 last_of_step = pos + 1 == len(actions) or actions[pos + 1].step_label != action.step_label
                 if last_of_step and self.on_step_done is not None:
-                    self._with_retries_call(lambda a=action: self.on_step_done(self, a), f"after {action.step_label}")
+                    self._with_retries_call(lambda a=action: self.on_step_done(a), f"after {action.step_label}")
         finally:
             if self.station is not None:
                 self._restore_power()
                 self.station.close()
                 self.station = None
 
-    def _ensure_station(self) -> Station:
+    def _ensure_station(self):
         if self.station is None:
             self.station = self._connect()
             self.identities.update(self.station.identities)
@@ -214,7 +184,7 @@ class Executor:
         if getattr(action, "dynamic", False):
             if self.dynamic is None:
                 raise PlanError(f"action {action.index} ({action.step_label}) is dynamic and no handler is set")
-            self.dynamic(self, action)
+            self.dynamic(action, self.measurer(action))
             self.store.mark_done(action.index)
             return
         self.set_pose(action.pose)
@@ -251,6 +221,10 @@ class Executor:
             **_pose_columns(self.current_pose),
         )
         return self.store.add_trace(meta, units.dbm_to_dbuv(level_dbm), completes_action=completes_action)
+
+    def measurer(self, action) -> "_ActionMeasurer":
+        """The narrow measuring interface for the dynamic work of ``action``."""
+        return _ActionMeasurer(self, action)
 
     # ------------------------------------------------------------------ bench pose
     def _set_power(self, powered: bool) -> None:
@@ -335,3 +309,20 @@ def _pose_columns(pose) -> dict:
         if value is not None:
             out[name] = str(value)
     return out
+
+
+class _ActionMeasurer:
+    """Moves and measurements of one dynamic action; every trace is stored with the action."""
+
+    def __init__(self, executor: Executor, action) -> None:
+        self._executor = executor
+        self._action = action
+
+    def move_to(self, pose) -> None:
+        """Put the mast and turntable in ``pose`` (see :meth:`Executor.set_pose`)."""
+        self._executor.set_pose(pose)
+
+    def measure(self, segment) -> tuple[np.ndarray, np.ndarray]:
+        """Measure and store one segment; returns (freq_hz, level_dbuv) as stored (float32)."""
+        trace_id = self._executor.measure_segment(self._action, 0, segment, completes_action=False)
+        return self._executor.store.trace(trace_id)

@@ -17,11 +17,6 @@ from bench.errors import BenchError
 
 __all__ = ["main", "build_parser"]
 
-SAFETY_LINE = ("Safety: analyzer inputs are damaged by more than about +30 dBm or any DC (use an "
-               "attenuator, DC block, limiter); boards may carry mains or high voltage; a moving "
-               "stage can pinch and crash a probe. A pre-scan is an estimate, not a compliance verdict.")
-
-
 def _seed(text: str) -> int:
     try:
         value = int(text)
@@ -136,14 +131,11 @@ def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     _setup_logging(args.verbose)
-    from bench import app
+    from bench.cli.verbs import VERBS
 
     previous = _sigterm_as_interrupt()
     try:
-        return int(app.dispatch(args) or 0)
-    except app.RunInterruptedExit as exc:
-        print(f"bench: {exc}", file=sys.stderr)
-        return exc.exit_code
+        return int(VERBS[args.verb](args) or 0)
     except BenchError as exc:
         print(f"bench: {exc}", file=sys.stderr)
         if args.verbose:
