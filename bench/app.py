@@ -32,7 +32,7 @@ class BenchOptions:
     bench_path: Path | None = None
     sim: bool = False
     board: Path | None = None
-    seed: int = 1
+    seed: int | None = None
     realtime: bool = False
     faults: tuple[str, ...] = ()
 
@@ -53,13 +53,18 @@ def _load_bench(options: BenchOptions, stack: ExitStack | None):
     bench = load_bench(bench_path)
     simulator = None
     if options.sim:
+        bench_path = Path(bench_path)
         from bench.simbench import start_simulated_bench
 
-        simulator, bench = start_simulated_bench(bench, board=options.board, seed=options.seed,
+        simulator, bench = start_simulated_bench(bench, board=options.board, seed=_seed(options),
                                                  realtime=options.realtime, faults=list(options.faults))
         if stack is not None:
             stack.callback(simulator.stop)
     return bench, Path(bench_path), simulator
+
+
+def _seed(options: BenchOptions) -> int:
+    return 1 if options.seed is None else int(options.seed)
 
 
 def prepare(sequence_path: Path, options: BenchOptions, *, stack: ExitStack | None = None):
@@ -75,7 +80,12 @@ def prepare(sequence_path: Path, options: BenchOptions, *, stack: ExitStack | No
 
     sequence = load_sequence(sequence_path)
     bench, bench_path, simulator = _load_bench(options, stack)
-    session = Session(sequence, Path(sequence_path), bench, bench_path, simulator)
+    sim_settings = None
+    if simulator is not None:
+        sim_settings = {"board": str(Path(options.board).resolve()) if options.board else "demo",
+                        "seed": _seed(options), "realtime": options.realtime}
+    session = Session(sequence, Path(sequence_path), bench, bench_path, simulator,
+                      sim_settings=sim_settings)
     try:
         session.make_plan()
     except PlanError as exc:
@@ -107,19 +117,49 @@ def run_sequence(session, *, out_root: Path, plots: bool = True) -> Path:
     return folder
 
 
-def resume(folder: Path, options: BenchOptions, *, plots: bool = True,
+def resume(folder: Path, options: BenchOptions, *, accept_changes: bool = False, plots: bool = True,
            stack: ExitStack | None = None) -> Path:
-    """Continue an interrupted run from the first action not done (and write its report)."""
+    """Continue an interrupted run from the first action not done (and write its report).
+
+    On the simulated bench the run's own board and seed are used. A file the run read that
+    changed since (limits, tables, profiles, board), or another board or seed, is refused
+    with the list of what changed unless ``accept_changes``; accepted changes are recorded.
+    """
+    from bench.provenance import changed_files
     from bench.runner import resumable_files, resume_run
 
     seq_path, bench_file, manifest = resumable_files(folder, bench_path=options.bench_path)
     sim = options.sim or bool(manifest.get("simulated") and options.bench_path is None)
-    session = prepare(seq_path, BenchOptions(bench_file, sim, options.board, options.seed,
-                                             options.realtime), stack=stack)
-    resume_run(session, folder, resumed=int(manifest.get("resumed", 0)))
+    board, seed = _resume_simulator(manifest, options, sim, accept_changes)
+    session = prepare(seq_path, BenchOptions(bench_file, sim, board, seed, options.realtime), stack=stack)
+    changes = changed_files(manifest.get("files", {}), session.used_files()) if "files" in manifest else []
+    if changes and not accept_changes:
+        raise ConfigError(f"{folder}: files the run read changed since it started: {'; '.join(changes)}. "
+                          "Restore them, or resume with --accept-changes to continue with the new ones")
+    resume_run(session, folder, resumed=int(manifest.get("resumed", 0)), accepted=changes)
     if plots:
         report(folder)
     return Path(folder)
+
+
+def _resume_simulator(manifest: dict, options: BenchOptions, sim: bool, accept_changes: bool):
+    """The board and seed a simulated run resumes with: its own, unless told otherwise."""
+    recorded = manifest.get("simulator") or {}
+    if not sim or not recorded:
+        return options.board, options.seed if options.seed is not None else 1
+    board_text = recorded.get("board", "demo")
+    board = None if board_text == "demo" else Path(board_text)
+    seed = int(recorded.get("seed", 1))
+    asked_board = None if options.board is None else Path(options.board).resolve()
+    differs = [f"{what} {new} instead of {old}" for what, new, old in (
+        ("--board", asked_board, board), ("--seed", options.seed, seed))
+        if new is not None and new != old]
+    if differs and not accept_changes:
+        raise ConfigError(f"the run was simulated with board {board_text} and seed {seed}; resume asked for "
+                          f"{', '.join(map(str, differs))}: leave them out, or add --accept-changes")
+    if differs:
+        return asked_board or board, options.seed if options.seed is not None else seed
+    return board, seed
 
 
 def report(folder: Path, views=None) -> Path:

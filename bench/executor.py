@@ -80,23 +80,24 @@ class Executor:
     retry : RetryPolicy
     sleep : callable
         Used for back-off (injected in tests so they never sleep).
-    on_step_done : callable, optional
-        ``f(last_action)`` after the last action of each step (analysis).
+    analyze : callable, optional
+        ``f(action) -> rows`` for an analysis action: the step's result rows, stored with the
+        action's done mark in one transaction.
     dynamic : callable, optional
-        ``f(action, measurer)`` carries out a dynamic action (final measurement of suspects)
-        through :meth:`measurer`.
+        ``f(action, measurer) -> rows`` carries out a dynamic action (final measurement of
+        suspects) through :meth:`measurer`; its rows are stored like an analysis's.
     """
 
     def __init__(self, plan, store: RunStore, connect: Callable[[], object], *, progress=None,
                  retry: RetryPolicy = RetryPolicy(), sleep: Callable[[float], None] = time.sleep,
-                 on_step_done: Callable | None = None, dynamic: Callable | None = None) -> None:
+                 analyze: Callable | None = None, dynamic: Callable | None = None) -> None:
         self.plan = plan
         self.store = store
         self._connect = connect
         self.progress = progress
         self.retry = retry
         self.sleep = sleep
-        self.on_step_done = on_step_done
+        self.analyze = analyze
         self.dynamic = dynamic
         self.identities: dict = {}
         self.current_pose = None
@@ -117,16 +118,13 @@ class Executor:
         if first is not None:
             self.store.discard_partial(first.index)  # the action in flight when a run was killed
         try:
-            for pos, action in enumerate(actions):
+            for action in actions:
                 if action.index in done:
                     continue
                 t0 = time.monotonic()
                 self._with_retries(action)
                 if self.progress is not None:
                     self.progress.advance(f"{action.step_kind} {action.step_label}", time.monotonic() - t0)
-                last_of_step = pos + 1 == len(actions) or actions[pos + 1].step_label != action.step_label
-                if last_of_step and self.on_step_done is not None:
-                    self._with_retries_call(lambda a=action: self.on_step_done(a), f"after {action.step_label}")
         finally:
             if self.station is not None:
                 self._restore_power()
@@ -180,12 +178,12 @@ class Executor:
     # ------------------------------------------------------------------ one action
     def do_action(self, action) -> None:
         self._ensure_station()
+        if action.analysis:
+            self._store_results(action, self.analyze)
+            return
         self._set_power(bool(action.board_powered))
-        if getattr(action, "dynamic", False):
-            if self.dynamic is None:
-                raise PlanError(f"action {action.index} ({action.step_label}) is dynamic and no handler is set")
-            self.dynamic(action, self.measurer(action))
-            self.store.mark_done(action.index)
+        if action.dynamic:
+            self._store_results(action, self.dynamic and (lambda a: self.dynamic(a, self.measurer(a))))
             return
         self.set_pose(action.pose)
         last = len(action.segments) - 1
@@ -193,6 +191,13 @@ class Executor:
             self.measure_segment(action, i, seg, completes_action=(i == last))
         if not action.segments:
             self.store.mark_done(action.index)
+
+    def _store_results(self, action, handler) -> None:
+        """Run an analysis or dynamic handler and store its rows with the action's done mark."""
+        if not handler:
+            raise PlanError(f"action {action.index} ({action.step_label}) needs a handler and none is set")
+        rows = handler(action)
+        self.store.replace_results(action.step_label, rows, done_action=action.index)
 
     def measure_segment(self, action, seg_index: int, seg, *, completes_action: bool) -> int:
         """Configure, sweep ``count`` times, combine, store. Returns the trace id."""

@@ -36,7 +36,10 @@ def make_plan(sequence, caps: BenchCaps) -> Plan:
         first = len(state.actions)
         kind = kind_of(step)
         note = kind.plan(state, sequence, index, step)
-        summaries.append(kind.summarize(index, step, state.actions[first:], sequence, note))
+        measured = state.actions[first:]
+        if kind.analyses:
+            state.add_analysis(index, step)
+        summaries.append(kind.summarize(index, step, measured, sequence, note))
     return Plan(sequence_name=sequence.name, actions=tuple(state.actions),
                 steps=tuple(summaries), warnings=tuple(state.warnings))
 

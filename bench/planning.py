@@ -247,7 +247,9 @@ class Action:
 
     ``est_time_s`` = motion from the previous action + sweeps + transfers. A ``dynamic``
     action (final step) stands for work the prescan result decides; its estimate assumes
-    :data:`ASSUMED_SUSPECTS` suspects and it has no segments.
+    :data:`ASSUMED_SUSPECTS` suspects and it has no segments. An ``analysis`` action analyses
+    its step once the step's measurements are stored; its results are stored in the same
+    transaction as its done mark, so a resumed run redoes a missing analysis.
     """
 
     index: int
@@ -260,6 +262,7 @@ class Action:
     est_time_s: float
     motion_time_s: float = 0.0
     dynamic: bool = False
+    analysis: bool = False
 
     @property
     def points(self) -> int:
@@ -545,5 +548,14 @@ class PlanState:
                         step_kind=step.kind, segments=tuple(segments), pose=pose,
                         board_powered=powered, est_time_s=est, motion_time_s=motion_s,
                         dynamic=dynamic)
+        self.actions.append(action)
+        return action
+
+    def add_analysis(self, index: int, step) -> Action:
+        """Append the analysis of a step (no instrument is used; the board's supply is left as is)."""
+        previous = self.actions[-1].board_powered if self.actions else True
+        action = Action(index=len(self.actions), step_index=index, step_label=step.label,
+                        step_kind=step.kind, segments=(), pose=None, board_powered=previous,
+                        est_time_s=0.0, analysis=True)
         self.actions.append(action)
         return action

@@ -58,7 +58,10 @@ def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, 
         "bench": _file_entry(session.bench_path),
         "plan": session.plan.summary_lines(),
         "steps": steps,
+        "files": session.used_files(),
     }
+    if session.sim_settings is not None:
+        manifest["simulator"] = dict(session.sim_settings)
     _board_entry(session.bench, manifest, copies)
     return manifest, list(copies.items())
 
@@ -133,20 +136,24 @@ class _StepRun:
 
 
 def _hooks(session, store: RunStore):
-    """(after each step, dynamic action) callbacks that dispatch to the step kinds."""
+    """(analysis, dynamic action) callbacks that dispatch to the step kinds; both return rows."""
     ctx = _StepRun(session, store)
 
-    def after_step(action) -> None:
+    def analyze(action) -> list[dict]:
         step = session.sequence.step(action.step_label)
-        line = kind_of(step).after_step(ctx, step)
-        if line:
-            log.info(line)
+        rows = kind_of(step).after_step(ctx, step)
+        counts: dict[str, int] = {}
+        for row in rows:
+            counts[row["status"]] = counts.get(row["status"], 0) + 1
+        log.info("%s %s: %s", step.kind, step.label,
+                 ", ".join(f"{v} {k}" for k, v in counts.items()) or "no peaks")
+        return rows
 
-    def dynamic(action, measurer) -> None:
+    def dynamic(action, measurer) -> list[dict]:
         step = session.sequence.step(action.step_label)
-        kind_of(step).run_dynamic(ctx, step, measurer)
+        return kind_of(step).run_dynamic(ctx, step, measurer)
 
-    return after_step, dynamic
+    return analyze, dynamic
 
 
 def _log_console():
@@ -173,14 +180,14 @@ def _execute(session, store: RunStore, station=None) -> None:
     progress = Progress(len(plan.actions), plan.total_time_s, live=sys.stderr.isatty(),
                         console=_log_console())
     retry = RetryPolicy(first_delay_s=0.05, attempts=5) if session.sim is not None else RetryPolicy()
-    after_step, dynamic = _hooks(session, store)
+    analyze, dynamic = _hooks(session, store)
     executor = Executor(plan, store, _connector(session), progress=progress, retry=retry,
-                        on_step_done=after_step, dynamic=dynamic)
+                        analyze=analyze, dynamic=dynamic)
     if station is not None:
         executor.station = station
         executor.identities.update(station.identities)
     runlog = _RunLog(store.folder)
-    hint = f"'bench resume {store.folder}{' --sim' if session.sim is not None else ''}'"
+    hint = f"'bench resume {store.folder}'"  # the manifest holds the bench, board and seed
     try:
         executor.run()
     except KeyboardInterrupt:
@@ -190,9 +197,12 @@ def _execute(session, store: RunStore, station=None) -> None:
         store.update_manifest(state="interrupted", interrupted_reason=str(exc))
         raise RunInterrupted(f"{exc}; the run is kept: continue it with {hint}") from exc
     except BenchError as exc:
-        # the run cannot go on (e.g. the instrument refused a setting): keep what was measured
+        # the run cannot go on (e.g. the instrument refused a setting or an analysis failed):
+        # keep what was measured and say how to continue once the cause is fixed
         store.update_manifest(state="interrupted", interrupted_reason=str(exc))
-        raise
+        stop = RunInterrupted(f"{exc}; the run is kept: fix the cause, then continue it with {hint}")
+        stop.exit_code = exc.exit_code  # an instrument refusal stays exit 1, a file mistake exit 2
+        raise stop from exc
     finally:
         progress.close()
         runlog.close()
@@ -248,12 +258,21 @@ def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Pat
     return seq_path, bench_file, manifest
 
 
-def resume_run(session, folder: Path, *, resumed: int) -> Path:
-    """Continue an interrupted run from the first action not done."""
+def resume_run(session, folder: Path, *, resumed: int, accepted: list[str] = ()) -> Path:
+    """Continue an interrupted run from the first action not done.
+
+    ``accepted`` lists input files that changed since the run started and that the operator
+    accepted (``--accept-changes``); they are recorded in the manifest and the events.
+    """
     store = RunStore(Path(folder))
     try:
         store.lock()
-        store.update_manifest(state="running", resumed=resumed + 1)
+        changes = {"state": "running", "resumed": resumed + 1}
+        if accepted:
+            changes["files"] = session.used_files()
+            changes["accepted_changes"] = list(store.manifest().get("accepted_changes", [])) + list(accepted)
+            store.log_event("warning", "resumed with changed inputs: " + "; ".join(accepted))
+        store.update_manifest(**changes)
         store.log_event("info", "resumed")
         _execute(session, store)
     finally:

@@ -12,6 +12,8 @@ from pathlib import Path
 from bench.instruments import capabilities, profiles_for
 from bench.planner import make_plan
 from bench.preflight import Checks, preflight, resolve_limit
+from bench.provenance import builtin_digest, digest
+from bench.steps import kind_of
 
 __all__ = ["Session", "build_plan"]
 
@@ -41,16 +43,19 @@ class Session:
     sim : bench.simbench.SimulatedBench or None
     profiles : dict, optional
         Profiles by role; loaded from the bench file when not given.
+    sim_settings : dict, optional
+        On the simulated bench: ``board`` (path, or ``"demo"``), ``seed``, ``realtime``.
     """
 
     def __init__(self, sequence, sequence_path: Path, bench, bench_path: Path, sim=None,
-                 profiles: dict | None = None) -> None:
+                 profiles: dict | None = None, sim_settings: dict | None = None) -> None:
         self.sequence = sequence
         self.sequence_path = Path(sequence_path)
         self.bench = bench
         self.bench_path = Path(bench_path)
         self.sim = sim
         self.profiles = profiles if profiles is not None else profiles_for(bench)
+        self.sim_settings = sim_settings
         self.plan = None
         self._limits: dict[str, object] = {}
 
@@ -72,3 +77,41 @@ class Session:
         if resolved not in self._limits:
             self._limits[resolved] = load_limit(resolved)
         return self._limits[resolved]
+
+    def used_files(self) -> dict[str, str]:
+        """SHA-256 of every file the session reads, by path (or ``builtin:<name>``).
+
+        The sequence and bench files, the limit files, the transducer tables, the instrument
+        profiles and, on the simulated bench, the board file.
+        """
+        files = {str(self.sequence_path.resolve()): digest(self.sequence_path),
+                 str(self.bench_path.resolve()): digest(self.bench_path)}
+        for step in self.sequence.steps:
+            kind = kind_of(step)
+            for _, path in kind.chain(self.bench, step)[0]:
+                files[str(Path(path).resolve())] = digest(path)
+            limit = kind.limit_name(self.sequence, step)
+            if limit is not None:
+                files.update(_limit_file(resolve_limit(limit, self.sequence_dir)))
+        for profile in self.profiles.values():
+            files.update(_profile_file(profile))
+        board = (self.sim_settings or {}).get("board")
+        if board and board != "demo":
+            files[str(Path(board).resolve())] = digest(board)
+        return files
+
+
+def _limit_file(resolved: str) -> dict[str, str]:
+    if resolved.endswith(".toml") or "/" in resolved or "\\" in resolved:
+        return {resolved: digest(resolved)}
+    return {f"builtin:limits/{resolved}": builtin_digest("bench", "data", "limits", f"{resolved}.toml")}
+
+
+def _profile_file(profile) -> dict[str, str]:
+    origin = str(getattr(profile, "origin", None) or getattr(profile, "name", ""))
+    if not origin:
+        return {}
+    if origin.startswith("builtin:"):
+        name = origin.split(":", 1)[1]
+        return {f"builtin:profiles/{name}": builtin_digest("bench.drivers", "profiles", f"{name}.toml")}
+    return {str(Path(origin).resolve()): digest(origin)}

@@ -235,6 +235,23 @@ class RunStore:
                 [tuple(_py(r.get(c)) for c in cols) for r in rows],
             )
 
+    def replace_results(self, step_label: str, rows: list[dict], *, done_action: int | None = None) -> None:
+        """Replace a step's results; with ``done_action``, mark that action done in the same
+        transaction, so a killed run has either both or neither."""
+        cols = ("step_label", "freq_hz", "level", "unit", "detector", "limit_level", "margin_db",
+                "status", "polarization", "height_m", "azimuth_deg", "chain", "note")
+        try:
+            with self._db:
+                self._db.execute("DELETE FROM results WHERE step_label = ?", (step_label,))
+                self._db.executemany(
+                    f"INSERT INTO results ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})",
+                    [tuple(_py(r.get(c)) for c in cols) for r in rows])
+                if done_action is not None:
+                    self._db.execute("INSERT OR REPLACE INTO actions_done VALUES (?, ?)",
+                                     (int(done_action), time.time()))
+        except sqlite3.Error as exc:
+            raise StoreError(f"{self.folder}: cannot store the results of {step_label!r}: {exc}") from exc
+
     def clear_results(self, step_label: str) -> None:
         with self._db:
             self._db.execute("DELETE FROM results WHERE step_label = ?", (step_label,))

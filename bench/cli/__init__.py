@@ -37,7 +37,7 @@ def build_parser() -> argparse.ArgumentParser:
         g.add_argument("--bench", type=Path, help="bench file (instruments, addresses, tables, site)")
         g.add_argument("--sim", action="store_true", help="use the built-in simulated bench over loopback")
         sp.add_argument("--board", type=Path, help="with --sim: simulated board file (default: the demo board)")
-        sp.add_argument("--seed", type=_seed, default=1, help="with --sim: random seed >= 0 (default 1)")
+        sp.add_argument("--seed", type=_seed, default=None, help="with --sim: random seed >= 0 (default 1)")
         sp.add_argument("--realtime", action="store_true", help="with --sim: sweeps and moves take their physical time")
 
     sp = sub.add_parser("run", help="check a sequence, then run it and store the results")
@@ -55,6 +55,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("resume", help="continue an interrupted run from the first action not done")
     sp.add_argument("run", type=Path)
     bench_args(sp)
+    sp.add_argument("--accept-changes", action="store_true",
+                    help="continue although limit, table, profile or board files changed since the run started")
     sp.add_argument("--no-plots", action="store_true")
 
     sp = sub.add_parser("sim", help="serve the simulated bench on loopback and print its addresses")

@@ -90,7 +90,8 @@ def _num(value, digits: int) -> str:
 
 def cmd_resume(args) -> int:
     with ExitStack() as stack:
-        folder = app.resume(args.run, _options(args), plots=not args.no_plots, stack=stack)
+        folder = app.resume(args.run, _options(args), accept_changes=args.accept_changes,
+                            plots=not args.no_plots, stack=stack)
     print(f"run completed in {folder}")
     return 0
 

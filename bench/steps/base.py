@@ -115,6 +115,9 @@ class StepKind:
         Keys naming an earlier step of a given kind (``("ambient", "ambient")``).
     shows_all_results : bool
         Every result row is worth showing on the terminal (not only suspects).
+    analyses : bool
+        The step is analysed once measured (:meth:`StepKind.after_step`); the plan holds an
+        analysis action for it.
     """
 
     name: ClassVar[str] = ""
@@ -122,6 +125,7 @@ class StepKind:
     far_field: ClassVar[bool] = True
     references: ClassVar[tuple[tuple[str, str], ...]] = ()
     shows_all_results: ClassVar[bool] = False
+    analyses: ClassVar[bool] = False
 
     # ----------------------------------------------------------------- sequence
     def sweep_name(self, sequence, step) -> str:
@@ -193,12 +197,18 @@ class StepKind:
         return set()
 
     # ----------------------------------------------------------------- running
-    def after_step(self, ctx: StepContext, step) -> str | None:
-        """Analysis once the step's last action is done; returns a line for the log or None."""
-        return None
+    def after_step(self, ctx: StepContext, step) -> list[dict]:
+        """Analyse the measured step (only when :attr:`analyses`); returns its result rows.
 
-    def run_dynamic(self, ctx: StepContext, step, measurer: Measurer) -> None:
-        """Carry out a dynamic action (work the plan could not lay out in advance)."""
+        The engine stores the rows in the same transaction as the analysis action's done mark.
+        """
+        return []
+
+    def run_dynamic(self, ctx: StepContext, step, measurer: Measurer) -> list[dict]:
+        """Carry out a dynamic action (work the plan could not lay out in advance).
+
+        Returns the step's result rows, stored with the action's done mark.
+        """
         raise NotImplementedError(f"step kind {self.name!r} plans no dynamic action")
 
     # ----------------------------------------------------------------- output

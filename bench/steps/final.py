@@ -168,15 +168,15 @@ class FinalKind(StepKind):
     def instruments(self, step: FinalStep) -> set[str]:
         return {"mast", "turntable"}
 
-    def run_dynamic(self, ctx, step: FinalStep, measurer) -> None:
+    def run_dynamic(self, ctx, step: FinalStep, measurer) -> list[dict]:
         from bench.steps.prescan import far_context
 
         prescan = ctx.sequence.step(step.of)
         bench = ctx.bench
         mast = bench.mast.height_limits_m if bench.mast is not None else (1.0, 4.0)
         table = bench.turntable.azimuth_limits_deg if bench.turntable is not None else (0.0, 360.0)
-        run_finals(ctx.store, measurer, step, prescan, ctx.sequence.sweep_of(step),
-                   far_context(ctx, prescan), mast, table)
+        return run_finals(ctx.store, measurer, step, prescan, ctx.sequence.sweep_of(step),
+                          far_context(ctx, prescan), mast, table)
 
 
 def _at(exc: PlanError, key: str) -> PlanError:
@@ -247,10 +247,8 @@ def _read_at(measurer, seg: Segment, freq_hz: float, rbw_hz: float) -> float:
 
 
 def run_finals(store, measurer, step: FinalStep, prescan_step, sweep, ctx, mast_limits_m,
-               turntable_limits_deg, *, points: int = 101):
-    """Remeasure every non-ambient suspect of ``prescan_step``; store and return the results."""
-    import pandas as pd
-
+               turntable_limits_deg, *, points: int = 101) -> list[dict]:
+    """Remeasure every non-ambient suspect of ``prescan_step``; returns the result rows."""
     suspects = store.results(prescan_step.label)
     suspects = suspects[suspects["status"].isin(["fail", "near"])]
     rows = []
@@ -259,9 +257,7 @@ def run_finals(store, measurer, step: FinalStep, prescan_step, sweep, ctx, mast_
                 _num(s["azimuth_deg"]))
         rows += _final_rows(measurer, step, sweep, ctx, float(s["freq_hz"]), pose,
                             (mast_limits_m, turntable_limits_deg), points)
-    store.clear_results(step.label)
-    store.add_results(rows)
-    return pd.DataFrame(rows)
+    return rows
 
 
 def _final_rows(measurer, step: FinalStep, sweep, ctx, f0: float, pose, limits, points: int) -> list[dict]:

@@ -157,6 +157,7 @@ class PrescanKind(StepKind):
     name = "prescan"
     model = PrescanStep
     references = (("ambient", "ambient"),)
+    analyses = True
 
     def warnings(self, where_text: str, step: PrescanStep) -> list[str]:
         if len(step.polarizations) == 1:
@@ -178,11 +179,8 @@ class PrescanKind(StepKind):
     def manifest_entry(self, sequence, step: PrescanStep) -> dict:
         return {**super().manifest_entry(sequence, step), "margin_db": step.margin_db}
 
-    def after_step(self, ctx, step: PrescanStep) -> str:
-        table = analyze_prescan(ctx.store, step, far_context(ctx, step))
-        counts = table["status"].value_counts().to_dict() if len(table) else {}
-        return (f"prescan {step.label}: "
-                + (", ".join(f"{v} {k}" for k, v in counts.items()) or "no peaks"))
+    def after_step(self, ctx, step: PrescanStep) -> list[dict]:
+        return analyze_prescan(ctx.store, step, far_context(ctx, step))
 
 
 def prescan_poses(step: PrescanStep) -> list[FarFieldPose]:
@@ -279,7 +277,7 @@ def _pose_of_max(store, label: str, freq_hz: float) -> dict:
             "azimuth_deg": _num(best["azimuth_deg"])}
 
 
-def _suspects(store, step: PrescanStep, ctx: FarFieldContext, freq, level, peaks):
+def _suspects(store, step: PrescanStep, ctx: FarFieldContext, peaks):
     from bench.analysis.peaks import flag_ambient, select_suspects
 
     suspects = select_suspects(peaks, ctx.limit.screening_level, step.margin_db)
@@ -301,10 +299,11 @@ def _passed(step: PrescanStep, ctx: FarFieldContext, peaks, max_rows: int):
     return passed.sort_values("margin_db").head(max_rows).assign(status="pass")
 
 
-def analyze_prescan(store, step: PrescanStep, ctx: FarFieldContext, *, max_pass_rows: int = 10):
-    """Find suspects in a finished prescan step and store them as results.
+def analyze_prescan(store, step: PrescanStep, ctx: FarFieldContext, *, max_pass_rows: int = 10) -> list[dict]:
+    """Find the suspects of a measured prescan step; returns its result rows (peak readings).
 
-    Returns the suspects table (also written to the store's ``results`` for the step).
+    Suspects (``fail``, ``near``), ambient signals (``ambient``) and up to ``max_pass_rows`` of
+    the strongest peaks that passed with margin (``pass``).
     """
     import pandas as pd
 
@@ -315,7 +314,7 @@ def analyze_prescan(store, step: PrescanStep, ctx: FarFieldContext, *, max_pass_
     level = ctx.correct(freq, raw)
     peaks = find_peaks_hz(freq, level, prominence_db=step.prominence_db,
                           min_separation_hz=step.min_separation_hz)
-    suspects = _suspects(store, step, ctx, freq, level, peaks)
+    suspects = _suspects(store, step, ctx, peaks)
     rows = []
     for _, r in pd.concat([suspects, _passed(step, ctx, peaks, max_pass_rows)], ignore_index=True).iterrows():
         pose = _pose_of_max(store, step.label, float(r["freq_hz"]))
@@ -326,8 +325,6 @@ def analyze_prescan(store, step: PrescanStep, ctx: FarFieldContext, *, max_pass_
                          unit=ctx.limit.quantity, detector="peak", limit_level=float(r["limit"]),
                          margin_db=float(r["margin_db"]), status=str(r["status"]), chain=ctx.chain_text,
                          note=note, **pose))
-    store.clear_results(step.label)
-    store.add_results(rows)
     for w in near_field_warnings(ctx.distance_m, freq, ctx.eut_size_m):
         store.log_event("warning", w)
-    return pd.DataFrame(rows)
+    return rows
