@@ -264,9 +264,13 @@ def test_grid_needs_a_stage_and_a_known_probe(tmp_path):
 
 def test_prescan_order_and_travel():
     plan = make_plan(load_sequence(DEMO / "demo-far-field.toml"), CAPS)
-    prescan = [a for a in plan.actions if a.step_kind == "prescan"]
-    # 4 heights x 2 polarizations x 8 azimuths (reference sheet §3)
+    prescan = [a for a in plan.actions if a.step_kind == "prescan" and not a.analysis]
+    # 4 heights x 2 polarizations x 8 azimuths (demo sequence; CISPR 16-2-3 asks for both
+    # polarizations and a height scan from 1 m to 4 m)
     assert len(prescan) == 64
+    # then one analysis action, which measures nothing
+    analysis = [a for a in plan.actions if a.analysis]
+    assert [(a.step_label, a.segments, a.index) for a in analysis] == [("prescan", (), prescan[-1].index + 1)]
     poses = [(a.pose.height_m, a.pose.polarization, a.pose.azimuth_deg) for a in prescan]
     assert poses[:8] == [(1.0, "horizontal", 0.0), (2.0, "horizontal", 0.0),
                          (3.0, "horizontal", 0.0), (4.0, "horizontal", 0.0),
