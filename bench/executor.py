@@ -183,6 +183,7 @@ class Executor:
             return
         self._set_power(bool(action.board_powered))
         if action.dynamic:
+            self.park_probe()
             self._store_results(action, self.dynamic and (lambda a: self.dynamic(a, self.measurer(a))))
             return
         self.set_pose(action.pose)
@@ -252,6 +253,17 @@ class Executor:
         except (TransportError, InstrumentError):
             pass
 
+    def park_probe(self) -> None:
+        """Before a far-field reading: no near-field probe stays mounted on the stage (tool 0).
+
+        A probe left over the board after a grid step would otherwise be what the analyzer
+        measures; the stage lifts to its safe height before the tool change.
+        """
+        stage = self.station.stage if self.station is not None else None
+        if stage is not None and self._tool != 0:
+            stage.select_tool(0)
+            self._tool = 0
+
     def set_pose(self, pose) -> None:
         self.current_pose = pose
         if pose is None:
@@ -270,6 +282,7 @@ class Executor:
                 self._rotation = pose.rotation_deg
             st.stage.move_to(float(pose.x_m), float(pose.y_m), float(pose.z_m))
             return
+        self.park_probe()
         height = getattr(pose, "height_m", None)
         polarization = getattr(pose, "polarization", None)
         if height is not None or polarization is not None:

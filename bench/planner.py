@@ -10,7 +10,8 @@ and whether the frequency step suits the RBW.
 
 from __future__ import annotations
 
-from bench.planning import BenchCaps, Plan, PlanState, AnalyzerCaps, scalloping_db, segment_sweep
+from bench.planning import (AnalyzerCaps, BenchCaps, FarFieldPose, Plan, PlanState, StagePose,
+                            scalloping_db, segment_sweep)
 from bench.steps import kind_of
 from bench.units import format_hz
 
@@ -40,8 +41,21 @@ def make_plan(sequence, caps: BenchCaps) -> Plan:
         if kind.analyses:
             state.add_analysis(index, step)
         summaries.append(kind.summarize(index, step, measured, sequence, note))
+    state.warnings.extend(_mixing_warnings(state.actions))
     return Plan(sequence_name=sequence.name, actions=tuple(state.actions),
                 steps=tuple(summaries), warnings=tuple(state.warnings))
+
+
+def _mixing_warnings(actions) -> list[str]:
+    """Near-field (probe on the stage) and far-field (antenna) readings in one sequence."""
+    near = next((a for a in actions if isinstance(a.pose, StagePose)), None)
+    far = next((a for a in actions if isinstance(a.pose, FarFieldPose) or a.dynamic), None)
+    if near is None or far is None:
+        return []
+    return [f"this sequence mixes near-field steps ('{near.step_label}', probe on the stage) and "
+            f"far-field steps ('{far.step_label}', antenna): the analyzer input must be moved from "
+            "the probe to the antenna cable between them; before each far-field reading the run "
+            "parks the probe (tool 0). Consider two sequences"]
 
 
 def _sweep_warnings(sequence, caps: AnalyzerCaps) -> list[str]:

@@ -147,3 +147,62 @@ def test_a_limit_file_edited_before_resume_is_refused_unless_accepted(tmp_path, 
     assert main(["resume", str(folder), "--no-plots", "--accept-changes"]) == 0, capsys.readouterr().err
     manifest = open_run(folder).manifest()
     assert any("my-limit.toml (changed)" in text for text in manifest["accepted_changes"])
+
+
+MIXED = """
+schema = 1
+name = "mixed"
+[sweeps.nf]
+start = "30 MHz"
+stop = "300 MHz"
+rbw = "1 MHz"
+points = 1001
+[[steps]]
+kind = "grid"
+label = "probe"
+sweep = "nf"
+probe = "hloop-10mm"
+orientations = ["0 deg"]
+area = { x = ["40 mm", "50 mm"], y = ["30 mm", "40 mm"] }
+step_size = "10 mm"
+height = "3 mm"
+[[steps]]
+kind = "sweep"
+label = "antenna"
+sweep = "nf"
+height = "1 m"
+polarization = "vertical"
+azimuth = "0 deg"
+"""
+
+
+def _far_peak(folder: Path, label: str) -> float:
+    run = open_run(folder)
+    try:
+        meta = run.traces(label)
+        freq, level = run.trace(int(meta.id.iloc[0]))
+    finally:
+        run.close()
+    return float(level.max())
+
+
+def test_a_far_field_step_after_a_grid_step_measures_through_the_antenna(tmp_path, capsys):
+    mixed = tmp_path / "mixed.toml"
+    mixed.write_text(MIXED, encoding="utf-8")
+    assert main(["check", str(mixed), "--sim"]) == 0
+    assert "mixes near-field steps ('probe'" in capsys.readouterr().out
+    far_only = tmp_path / "far.toml"
+    far_only.write_text(MIXED.split("[[steps]]")[0] + "[[steps]]" + MIXED.split("[[steps]]")[2],
+                        encoding="utf-8")
+    code = main(["run", str(mixed), "--sim", "--no-plots", "--out", str(tmp_path / "mixed")])
+    assert code == 0, capsys.readouterr().err
+    code = main(["run", str(far_only), "--sim", "--no-plots", "--out", str(tmp_path / "far")])
+    assert code == 0, capsys.readouterr().err
+    (m,) = (tmp_path / "mixed").iterdir()
+    (f,) = (tmp_path / "far").iterdir()
+    # the strongest line at the antenna is the same with or without a grid step before it: the
+    # probe was parked (tool 0) before the far-field reading
+    assert abs(_far_peak(m, "antenna") - _far_peak(f, "antenna")) < 1.0
+    # ... and this check can fail: the probe at that spot reads a very different level, which the
+    # far-field step read before the fix (demo board and bench, our scenario)
+    assert abs(_far_peak(m, "probe") - _far_peak(m, "antenna")) > 10.0
