@@ -34,11 +34,27 @@ def parse_faults(texts: list[str]):
         if not sep or field not in names:
             known = ", ".join(sorted(n.replace("_", "-") for n in names))
             raise ConfigError(f"--fault: expected NAME=VALUE with NAME one of {known}, found {text!r}")
-        try:
-            values[field] = value.strip() if field == "error_text" else int(value)
-        except ValueError:
-            raise ConfigError(f"--fault {key}: expected a whole number, found {value!r}") from None
+        if field in values:
+            raise ConfigError(f"--fault {key.strip()}: expected each fault once, found it again ({text!r})")
+        if field == "error_text":
+            values[field] = value.strip()
+        else:
+            values[field] = _fault_count(key.strip(), value, minimum=_FAULT_MINIMUM.get(field, 1))
     return Faults(**values)
+
+
+# error-code is a SCPI code (negative); refuse-after-drop counts refusals (0: none)
+_FAULT_MINIMUM = {"error_code": None, "refuse_after_drop": 0}
+
+
+def _fault_count(key: str, value: str, *, minimum: int | None) -> int:
+    try:
+        count = int(value)
+    except ValueError:
+        raise ConfigError(f"--fault {key}: expected a whole number, found {value!r}") from None
+    if minimum is not None and count < minimum:
+        raise ConfigError(f"--fault {key}: expected a whole number >= {minimum}, found {count}")
+    return count
 
 
 class SimulatedBench:

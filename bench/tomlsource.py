@@ -102,6 +102,9 @@ def read_toml(path: str | Path) -> TomlSource:
     except (OSError, UnicodeDecodeError) as exc:
         raise _with_all(ConfigError(f"expected a readable UTF-8 TOML file, found {_os_reason(exc)}",
                                     file=file)) from exc
+    if text.startswith("\ufeff"):
+        raise _with_all(ConfigError("expected UTF-8 text without a byte-order mark, found one at the "
+                                    "start of the file: save it as plain UTF-8", file=file, line=1))
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -398,7 +401,7 @@ def check_schema(source: TomlSource, version: int = 1) -> None:
                                     "found no schema key", file=source.file, line=1,
                                     key="schema"))
     found = source.data["schema"]
-    if found != version or isinstance(found, bool):
+    if type(found) is not int or found != version:  # noqa: E721 - 1.0 and true are not schema 1
         raise _with_all(source.error(("schema",), f"expected schema {version} (the only "
                                                   f"version this tool reads), found "
                                                   f"{format_value(found)}"))

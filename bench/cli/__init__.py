@@ -129,6 +129,16 @@ def _restore_sigterm(previous) -> None:
         signal.signal(signal.SIGTERM, previous)
 
 
+def _silence_stdout() -> None:
+    """Point stdout at /dev/null so the interpreter's final flush does not fail again."""
+    import os
+
+    try:
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -147,6 +157,10 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("bench: stopped by the operator", file=sys.stderr)
         return 130
+    except BrokenPipeError:
+        # the reader went away (`bench info | head`): stop quietly, as a pipe-aware tool does
+        _silence_stdout()
+        return 141
     finally:
         _restore_sigterm(previous)
 
