@@ -15,7 +15,7 @@ import pandas as pd
 
 from bench import plots
 from bench.analysis import runview
-from bench.errors import BenchError
+from bench.errors import BenchError, StoreError
 from bench.htmlkit import DISCLAIMER, embed_png, esc, html_table, mhz, page, safe_name
 from bench.steps import KINDS
 
@@ -220,6 +220,13 @@ def write_report(run, views: MapViews | None = None) -> Path:
     pathlib.Path
         The HTML file.
     """
+    try:
+        return _write_report(run, views)
+    except OSError as exc:
+        raise StoreError(f"{run.folder}: cannot write the report: {exc.strerror or exc}") from None
+
+
+def _write_report(run, views: MapViews | None) -> Path:
     manifest = run.manifest()
     (Path(run.folder) / "plots").mkdir(exist_ok=True)
     name = manifest.get("name", Path(run.folder).name)

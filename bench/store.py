@@ -119,13 +119,23 @@ class TraceMeta:
 
 
 def write_manifest_atomic(path: Path, data: dict) -> None:
-    """Write TOML through a temporary file and ``os.replace``: never a half-written manifest."""
+    """Write TOML through a temporary file and ``os.replace``: never a half-written manifest.
+
+    Raises
+    ------
+    StoreError
+        The folder cannot be written (full disk, read-only); no temporary file is left.
+    """
     tmp = path.with_suffix(".toml.tmp")
-    with open(tmp, "wb") as fh:
-        tomli_w.dump(_drop_none(data), fh)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as fh:
+            tomli_w.dump(_drop_none(data), fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except OSError as exc:
+        tmp.unlink(missing_ok=True) if tmp.parent.is_dir() else None
+        raise StoreError(f"{path}: cannot write the manifest: {exc.strerror or exc}") from None
 
 
 def _drop_none(value):
@@ -215,15 +225,22 @@ class RunStore:
             raise StoreError(f"{self.folder}: cannot store trace: {exc}") from exc
         return int(cur.lastrowid)
 
+    def _write(self, what: str, sql: str, params=()) -> sqlite3.Cursor:
+        """One statement in its own transaction; a storage failure is one StoreError line."""
+        try:
+            with self._db:
+                return self._db.execute(sql, params)
+        except sqlite3.Error as exc:
+            raise StoreError(f"{self.folder}: cannot {what}: {exc}") from None
+
     def mark_done(self, action_index: int) -> None:
-        with self._db:
-            self._db.execute("INSERT OR REPLACE INTO actions_done VALUES (?, ?)", (int(action_index), time.time()))
+        self._write("mark an action done", "INSERT OR REPLACE INTO actions_done VALUES (?, ?)",
+                    (int(action_index), time.time()))
 
     def discard_partial(self, action_index: int) -> int:
         """Delete traces of an action that did not finish (resume redoes it whole)."""
-        with self._db:
-            cur = self._db.execute("DELETE FROM traces WHERE action_index = ? AND action_index NOT IN "
-                                   "(SELECT action_index FROM actions_done)", (int(action_index),))
+        cur = self._write("discard a partial action", "DELETE FROM traces WHERE action_index = ? AND "
+                          "action_index NOT IN (SELECT action_index FROM actions_done)", (int(action_index),))
         return cur.rowcount
 
     def add_results(self, rows: list[dict]) -> None:
@@ -253,12 +270,11 @@ class RunStore:
             raise StoreError(f"{self.folder}: cannot store the results of {step_label!r}: {exc}") from exc
 
     def clear_results(self, step_label: str) -> None:
-        with self._db:
-            self._db.execute("DELETE FROM results WHERE step_label = ?", (step_label,))
+        self._write("clear results", "DELETE FROM results WHERE step_label = ?", (step_label,))
 
     def log_event(self, level: str, text: str) -> None:
-        with self._db:
-            self._db.execute("INSERT INTO events (t_wall, level, text) VALUES (?, ?, ?)", (time.time(), level, text))
+        self._write("record an event", "INSERT INTO events (t_wall, level, text) VALUES (?, ?, ?)",
+                    (time.time(), level, text))
 
     def checkpoint(self) -> None:
         """Fold the WAL back into the database at the end of a run (pitfalls: Storage).
@@ -282,7 +298,10 @@ class RunStore:
         """
         import fcntl
 
-        fh = open(self.folder / "run.lock", "a+", encoding="utf-8")
+        try:
+            fh = open(self.folder / "run.lock", "a+", encoding="utf-8")
+        except OSError as exc:
+            raise StoreError(f"{self.folder}: cannot write in the run folder: {exc.strerror or exc}") from None
         try:
             fcntl.flock(fh, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except OSError:
@@ -299,6 +318,9 @@ class RunStore:
         self._db.close()
         lock = getattr(self, "_lock_file", None)
         if lock is not None:
+            # a finished or stopped run leaves no lock file behind; unlinking before the flock is
+            # released means no other process can take a lock on a file about to vanish
+            (self.folder / "run.lock").unlink(missing_ok=True)
             lock.close()  # releases the flock
             self._lock_file = None
 
