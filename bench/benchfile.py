@@ -40,6 +40,9 @@ __all__ = [
 ]
 
 Address = Annotated[StrictStr, Field(min_length=1)]
+#: Longest reply deadline an instrument section may ask for (one day): no bench means more,
+#: and a typo such as "1e12 s" would otherwise hang a run for ever.
+MAX_TIMEOUT_S = 86_400.0
 LengthPair = quantity_list("length", 2)
 AnglePair = quantity_list("angle", 2)
 
@@ -86,7 +89,7 @@ class AnalyzerSection(_Model):
 
     address: Address
     profile: StrictStr = "scpi-analyzer"
-    timeout_s: quantity("time", positive=True) = Field(10.0, alias="timeout")
+    timeout_s: Annotated[quantity("time", positive=True), Field(le=MAX_TIMEOUT_S)] = Field(10.0, alias="timeout")
     noise_figure_db: Optional[quantity("db", non_negative=True)] = Field(
         None, alias="noise_figure")
 

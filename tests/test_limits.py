@@ -293,6 +293,13 @@ def test_unknown_key_names_file_line_and_key(bad):
     assert err.line == 11 and "unknown key" in err.message
 
 
+def test_a_level_no_standard_could_mean_is_refused(bad):
+    # a finite but absurd level (1e308 dBuV/m) would make every reading pass
+    err = bad(GOOD.replace('level = "52 dBuV/m" }', 'level = "1e308 dBuV/m" }'))
+    assert err.key == "lines.quasi-peak.segments[1].level" and err.line == 11
+    assert "expected a limit level from -100 to 200 dB" in err.message
+
+
 def test_wrong_level_unit(bad):
     err = bad(GOOD.replace('level = "52 dBuV/m" }', 'level = "52 dBuV" }'))
     assert err.key == "lines.quasi-peak.segments[1].level" and err.line == 11

@@ -391,11 +391,22 @@ def _parse_level(text: Any, quantity_name: str) -> float:
         return 20.0 * math.log10(float(match.group(1)) * factor)
 
 
+#: Plausible limit levels, dB above the quantity's reference: every radiated and conducted
+#: emission limit of the product standards lies well inside (common practice; a guard against
+#: a typo such as a missing unit prefix, not a physical bound).
+LEVEL_RANGE_DB = (-100.0, 200.0)
+
+
 def _level(source: TomlSource, text: Any, quantity_name: str, path: tuple) -> float:
     try:
-        return _parse_level(text, quantity_name)
+        value = _parse_level(text, quantity_name)
     except UnitError as exc:
         raise source.error(path, exc.message) from exc
+    lo, hi = LEVEL_RANGE_DB
+    if not lo <= value <= hi:
+        raise source.error(path, f"expected a limit level from {lo:g} to {hi:g} dB above the "
+                                 f"{quantity_name} reference, found {format_value(text)} ({value:.3g} dB)")
+    return value
 
 
 def _segment(source: TomlSource, model: _SegmentModel, quantity_name: str, path: tuple
