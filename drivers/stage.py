@@ -5,10 +5,11 @@ report format, reply patterns, deadlines) comes from a TOML profile such as
 ``gcode-cartesian`` or ``gcode-cnc``. Millimetres and mm/min appear only in the G-code text;
 everything else is metres, seconds and degrees.
 
-Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLimits`):
+Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLimits`, the one
+type :mod:`bench.benchfile` produces, ``bench.stage.safety_limits``):
 
-* a target outside the soft limits is refused with :class:`~bench.errors.SafetyLimitError`
-  before a single byte is sent;
+* a target outside the soft limits, the rotary (A) limits included, is refused with
+  :class:`~bench.errors.SafetyLimitError` before a single byte is sent;
 * no move before the stage has been homed in this session;
 * an XY move happens at the travel height: Z goes up to ``safe_z`` first (never down to it
   when already higher), then XY, then Z down to the target;
@@ -25,6 +26,7 @@ from typing import Any
 
 from bench.drivers.lineproto import Handshake, LineConversation, LineDeviceProfile, compile_pattern
 from bench.errors import ConfigError, InstrumentError, PlanError, SafetyLimitError
+from bench.stagelimits import StageLimits
 from bench.transports import open_transport
 from bench.units import parse
 
@@ -36,72 +38,6 @@ _COMMANDS = ("units_mm", "absolute", "home", "move", "wait", "position", "dwell"
 
 
 # ---------------------------------------------------------------------------------- limits
-
-
-@dataclass(frozen=True)
-class StageLimits:
-    """Safety values of one stage, from the bench file's ``[stage]`` table.
-
-    Attributes
-    ----------
-    x_m, y_m, z_m : tuple of float
-        Soft limits (min, max) of each axis in stage coordinates, metres.
-    safe_z_m : float
-        Travel height for XY moves (stage z), metres.
-    max_feed_m_per_s : float
-        Highest feed the driver may command, m/s.
-    position_tolerance_m : float
-        Largest accepted difference between target and reported position, metres.
-    rotary_axis : bool
-        The stage has an A axis that turns the probe.
-    a_deg : tuple of float
-        Soft limits of the A axis, degrees.
-    """
-
-    x_m: tuple[float, float]
-    y_m: tuple[float, float]
-    z_m: tuple[float, float]
-    safe_z_m: float
-    max_feed_m_per_s: float
-    position_tolerance_m: float
-    rotary_axis: bool = False
-    a_deg: tuple[float, float] = (-360.0, 360.0)
-
-    def __post_init__(self) -> None:
-        for name in ("x_m", "y_m", "z_m", "a_deg"):
-            low, high = getattr(self, name)
-            if not low < high:
-                raise ConfigError(f"stage limits {name}: expected min < max, found [{low}, {high}]")
-        if not self.z_m[0] <= self.safe_z_m <= self.z_m[1]:
-            raise ConfigError(f"stage safe_z {self.safe_z_m * 1e3:g} mm lies outside the z limits "
-                              f"[{self.z_m[0] * 1e3:g}, {self.z_m[1] * 1e3:g}] mm")
-        if not self.max_feed_m_per_s > 0:
-            raise ConfigError(f"stage max_feed: expected > 0 mm/s, found {self.max_feed_m_per_s * 1e3:g} mm/s")
-        if not self.position_tolerance_m > 0:
-            raise ConfigError("stage position_tolerance: expected > 0 mm, "
-                              f"found {self.position_tolerance_m * 1e3:g} mm")
-
-    @classmethod
-    def from_bench(cls, table: dict[str, Any]) -> "StageLimits":
-        """Build from a bench file's ``[stage]`` table (quantities as text with units)."""
-        try:
-            limits = table["limits"]
-            axes = {a: tuple(parse(v, "length") for v in limits[a]) for a in _AXES}
-            rotary = table.get("rotary_limits", ["-360 deg", "360 deg"])
-            return cls(
-                x_m=axes["x"], y_m=axes["y"], z_m=axes["z"],
-                safe_z_m=parse(table["safe_z"], "length"),
-                max_feed_m_per_s=parse(table["max_feed"], "speed"),
-                position_tolerance_m=parse(table.get("position_tolerance", "0.05 mm"), "length"),
-                rotary_axis=bool(table.get("rotary_axis", False)),
-                a_deg=tuple(parse(v, "angle") for v in rotary),
-            )
-        except KeyError as exc:
-            raise ConfigError(f"missing key {exc.args[0]!r}", key=f"stage.{exc.args[0]}") from exc
-
-    def axis_limits_m(self, axis: str) -> tuple[float, float]:
-        """(min, max) of ``axis`` ('x', 'y' or 'z'), metres."""
-        return getattr(self, f"{axis}_m")
 
 
 # --------------------------------------------------------------------------------- profile

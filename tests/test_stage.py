@@ -7,6 +7,7 @@ import math
 import pytest
 
 from bench.drivers.lineproto import LineConversation, checksum, numbered_line
+from bench.benchfile import StageSection, load_bench
 from bench.drivers.profile import load_profile_data
 from bench.drivers.stage import Stage, StageLimits, StageProfile, plan_path
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
@@ -17,15 +18,17 @@ from bench.transports import ScriptedTransport, open_transport
 
 PROFILES = {"cartesian": "gcode-cartesian", "cnc": "gcode-cnc"}
 
-# The bench-file example of notes/formats.md ([stage] table).
+# The [stage] table of the demo bench file (sequences/demo-bench.toml), with a board origin.
 BENCH_STAGE = {
+    "address": "socket://127.0.0.1:1",
     "limits": {"x": ["0 mm", "300 mm"], "y": ["0 mm", "200 mm"], "z": ["0 mm", "60 mm"]},
     "safe_z": "40 mm",
     "max_feed": "50 mm/s",
     "position_tolerance": "0.05 mm",
+    "board_origin": ["60 mm", "40 mm", "15 mm"],
     "rotary_axis": True,
 }
-LIMITS = StageLimits.from_bench(BENCH_STAGE)
+LIMITS = StageSection.model_validate(BENCH_STAGE).safety_limits
 
 
 class RecordingTransport:
@@ -87,7 +90,8 @@ def rig(world, request):
     state, clock = world
     opened = []
 
-    def make(dialect="cartesian", wire="tcp", profile=None, transport_cls=RecordingTransport, **sim_kw):
+    def make(dialect="cartesian", wire="tcp", profile=None, transport_cls=RecordingTransport, limits=LIMITS,
+             **sim_kw):
         sim = SimStage(state, clock, dialect=dialect, **sim_kw)
         server = sim.serve_tcp() if wire == "tcp" else sim.serve_pty()
         opened.append(server)
@@ -95,7 +99,7 @@ def rig(world, request):
         address = server.url if wire == "tcp" else server.path
         recorder = transport_cls(open_transport(address, profile.transport_settings()))
         opened.append(recorder)
-        return sim, Stage(recorder, profile, LIMITS), recorder
+        return sim, Stage(recorder, profile, limits), recorder
 
     yield make
     for thing in reversed(opened):
@@ -145,8 +149,10 @@ def test_limits_from_the_bench_file_example():
     assert LIMITS.z_m == pytest.approx((0.0, 0.06))
     assert (LIMITS.safe_z_m, LIMITS.max_feed_m_per_s) == pytest.approx((0.04, 0.05))
     assert LIMITS.position_tolerance_m == pytest.approx(5e-5)
-    with pytest.raises(ConfigError, match="safe_z 80 mm lies outside"):
-        StageLimits.from_bench({**BENCH_STAGE, "safe_z": "80 mm"})
+    assert LIMITS.rotary_axis and LIMITS.a_deg == (-360.0, 360.0)  # no `a` in the table: one turn either way
+    with pytest.raises(ConfigError, match=r"stage.safe_z: expected a height inside the z limits \[0 mm, 60 mm\], "
+                                          r"found 80 mm"):
+        StageLimits(x_m=LIMITS.x_m, y_m=LIMITS.y_m, z_m=LIMITS.z_m, safe_z_m=0.08, max_feed_m_per_s=0.05)
 
 
 # -------------------------------------------------------------------------------- safety
@@ -177,6 +183,45 @@ def test_feed_above_max_feed_is_refused_before_any_byte(rig):
     with pytest.raises(SafetyLimitError, match="60 mm/s outside"):
         stage.move_to(0.1, 0.1, 0.01, feed_m_per_s=0.06)
     assert len(recorder.sent) == sent
+
+
+BENCH_WITH_A_LIMITS = """schema = 1
+name = "rotary limits"
+
+[analyzer]
+address = "TCPIP::127.0.0.1::5025::SOCKET"
+
+[stage]
+address = "socket://127.0.0.1:1"
+safe_z = "40 mm"
+max_feed = "50 mm/s"
+board_origin = ["60 mm", "40 mm", "15 mm"]
+rotary_axis = true
+
+[stage.limits]
+x = ["0 mm", "300 mm"]
+y = ["0 mm", "200 mm"]
+z = ["0 mm", "60 mm"]
+a = ["-90 deg", "90 deg"]
+"""
+
+
+def test_bench_file_rotary_limit_refuses_a_rotation_before_any_byte(rig, tmp_path, world):
+    state, _ = world
+    path = tmp_path / "bench.toml"
+    path.write_text(BENCH_WITH_A_LIMITS, encoding="utf-8")
+    limits = load_bench(path, check_files=False).stage.safety_limits
+    assert limits.a_deg == (-90.0, 90.0)
+    sim, stage, recorder = rig(limits=limits)
+    stage.connect()
+    stage.home()
+    sent, received = len(recorder.sent), sim.bytes_received
+    with pytest.raises(SafetyLimitError, match=r"stage A target 120 deg outside the rotary limits \[-90, 90\] deg"):
+        stage.rotate_to(120.0)
+    assert len(recorder.sent) == sent and sim.bytes_received == received
+    assert state.probe_rotation_deg == 0.0
+    assert stage.rotate_to(-90.0)[3] == pytest.approx(-90.0)  # the limit itself is allowed
+    assert "G1 A-90.000 F5400" in recorder.sent[sent:]
 
 
 def test_unhomed_stage_refuses_to_move(rig):
