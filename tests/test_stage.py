@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import copy
 import math
 
 import pytest
 
 from bench.drivers.lineproto import LineConversation, checksum, numbered_line
 from bench.benchfile import StageSection, load_bench
-from bench.drivers.profile import load_profile_data
+from bench.drivers.profile import load_profile_source
 from bench.drivers.stage import Stage, StageLimits, StageProfile, plan_path
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
 from bench.sim.clock import VirtualClock
@@ -77,11 +78,12 @@ def world():
 
 
 def _profile(dialect: str, **overrides) -> StageProfile:
-    data, origin = load_profile_data(PROFILES[dialect])
+    """A built-in profile with some keys replaced (``{"handshake.timeout": "0.3 s"}``), validated."""
+    data = copy.deepcopy(load_profile_source(PROFILES[dialect]).data)
     for dotted, value in overrides.items():
         table, key = dotted.split(".")
         data[table][key] = value
-    return StageProfile.from_data(data, origin)
+    return StageProfile.model_validate(data)
 
 
 @pytest.fixture
