@@ -4,6 +4,10 @@ An unattended ambient capture needs the board off; a supply on the bench (``[sup
 bench file) does it through the SCPI ``OUTPut`` subsystem. Command spellings come from the
 profile (``drivers/profiles/scpi-supply.toml``), a frozen model (:class:`SupplyProfile`) read by
 :func:`bench.drivers.profile.load_profile`.
+
+Switching sends the output command, reads one error-queue entry (a refused command becomes an
+:class:`~bench.errors.InstrumentError` with the supply's code and text), confirms the state with
+the output query, then lets the board settle.
 """
 
 from __future__ import annotations
@@ -37,7 +41,7 @@ class SupplyCommands(ProfileTable):
     identify, clear_status : str
         Sent when the supply is opened.
     error_query : str
-        Reads one error-queue entry ``<code>,"<text>"`` (required; not sent by the driver yet).
+        Reads one error-queue entry ``<code>,"<text>"`` (``0`` when empty); read after switching.
     output_on, output_off, output_query : str
         Switch the output; the query answers ``1``/``ON`` or ``0``/``OFF``.
     settle_s : float
@@ -121,9 +125,11 @@ class Supply:
         return self.transport.query(self.profile.commands.identify)
 
     def set_output(self, on: bool) -> None:
-        """Switch the output, confirm it with the query, let the board settle."""
+        """Switch the output, check the error queue, confirm the state, let the board settle."""
         c = self.profile.commands
-        self.transport.write(c.output_on if on else c.output_off)
+        command = c.output_on if on else c.output_off
+        self.transport.write(command)
+        self.check_errors(command)
         state = self.transport.query(c.output_query).strip().upper()
         if state not in (("1", "ON") if on else ("0", "OFF")):
             raise InstrumentError(self.transport.address, c.output_query,
@@ -131,7 +137,24 @@ class Supply:
         if self._wait is not None and self.profile.settle_s > 0:
             self._wait(self.profile.settle_s)
 
+    def check_errors(self, command: str) -> None:
+        """Read one error-queue entry after ``command``; anything but ``0`` is an InstrumentError.
+
+        The queue was cleared when the supply was opened, so an entry belongs to ``command``.
+        """
+        code, text = _parse_error(self.transport.query(self.profile.commands.error_query))
+        if code != 0:
+            raise InstrumentError(self.transport.address, command, code=code, text=text)
+
     def close(self) -> None:
         """Close the connection (the output stays as it is)."""
         self.transport.close()
 
+
+def _parse_error(reply: str) -> tuple[int, str]:
+    """``-113,"Undefined header"`` -> (-113, 'Undefined header') (SCPI-1999 error queue)."""
+    head, _, tail = reply.strip().partition(",")
+    try:
+        return int(head), tail.strip().strip('"')
+    except ValueError:
+        return -1, f"unreadable error reply {reply!r}"
