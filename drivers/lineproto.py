@@ -7,6 +7,10 @@ they may send information lines (a position report), keep-alive lines while a lo
 The host must wait for the acknowledgement before sending the next line (reference sheet §10,
 "One line per command ... Wait for ok").
 
+Some controllers answer a few commands with one line and no ``ok`` at all, typically a status
+query they take as a real-time character (``?`` answered by ``<Idle|MPos:...>`` only). A
+profile lists those in ``[handshake] no_ok``; the conversation then waits for that one line.
+
 What the lines look like is data: a :class:`Handshake` validated from a profile's
 ``[handshake]`` table, and :class:`LineConnection` from its ``[connection]`` table (both read by
 :func:`bench.drivers.profile.load_profile`). This module only runs the conversation:
@@ -94,6 +98,10 @@ class Handshake(ProfileTable):
         Send ``N<n> <command>*<cs>`` lines (counter reset with ``M110 N0`` by the caller).
     error_codes : dict
         Meaning of numeric error codes, for messages (``{3: "not homed"}``).
+    no_ok : tuple of str
+        Commands (exact text) answered by one reply line and no acknowledgement, such as a
+        status query the controller treats as a real-time character. They are sent without a
+        line number.
     """
 
     ok: Pattern
@@ -105,6 +113,7 @@ class Handshake(ProfileTable):
     banner_timeout_s: quantity("time", positive=True) = Field(5.0, alias="banner_timeout")
     line_numbers: StrictBool = False
     error_codes: dict[int, StrictStr] = {}
+    no_ok: tuple[Annotated[StrictStr, Field(min_length=1)], ...] = ()
 
 
 class LineConnection(ProfileTable):
@@ -237,17 +246,21 @@ class LineConversation:
         Returns
         -------
         Reply
-            Information lines and the acknowledgement's extra text.
+            Information lines and the acknowledgement's extra text. For a command the handshake
+            lists in ``no_ok``, the one reply line (and no acknowledgement text).
 
         Raises
         ------
         InstrumentError
             The controller answered with an error line (address, command, code, text).
         ReplyTimeoutError
-            No acknowledgement before the deadline (the message names the command).
+            No acknowledgement (or, for a ``no_ok`` command, no reply line) before the deadline;
+            the message names the command.
         """
         budget_s = self.handshake.timeout_s if timeout_s is None else timeout_s
         deadline = time.monotonic() + budget_s
+        if text in self.handshake.no_ok:
+            return self._answer_line(text, deadline, budget_s)
         wire = self._wire_text(text)
         self.transport.write(wire)
         lines: list[str] = []
@@ -272,6 +285,24 @@ class LineConversation:
                 resend_pending = True
             elif kind == "line":
                 lines.append(line)
+
+    def _answer_line(self, text: str, deadline: float, budget_s: float) -> Reply:
+        """Send a command answered by one line and no ``ok``; return that line.
+
+        The command goes out without a line number (controllers take such commands outside the
+        numbered stream). Keep-alive, blank and banner lines are skipped; an ``ok`` line is left
+        over from something else and skipped too (it shows in a timeout message).
+        """
+        self.transport.write(text)
+        seen: list[str] = []
+        while True:
+            line = self._read(deadline, text, budget_s, seen)
+            kind, match = self._classify(line)
+            if kind == "error":
+                raise self._error(text, match)
+            if kind == "line":
+                return Reply(text, (line,))
+            seen.append(line)
 
     def send_without_reply(self, text: str) -> None:
         """Write a line and wait for nothing (emergency stop: the controller may never answer)."""

@@ -27,13 +27,14 @@ from __future__ import annotations
 import math
 from typing import Annotated, Literal
 
+import pydantic
 from pydantic import Field, StrictFloat, StrictInt
 
 from bench.drivers.lineproto import LineConversation, LineDeviceProfile
 from bench.drivers.profile import ProfileTable, pattern_with, template_with
 from bench.errors import InstrumentError, PlanError, SafetyLimitError
 from bench.stagelimits import StageLimits
-from bench.tomlsource import quantity
+from bench.tomlsource import cross_check_error, format_value, quantity
 from bench.transports import open_transport
 
 __all__ = ["StageCommands", "StageLimits", "StagePosition", "StageProfile", "StageRotary", "StageTiming",
@@ -148,6 +149,16 @@ class StageProfile(LineDeviceProfile):
     def accel_m_per_s2(self) -> float:
         """Lowest acceleration expected, m/s^2 (``[timing] accel``)."""
         return self.timing.accel_m_per_s2
+
+    @pydantic.model_validator(mode="after")
+    def _no_ok_only_for_queries(self) -> "StageProfile":
+        queries = (self.commands.position, self.commands.identify)
+        problems = [(("handshake", "no_ok", i), f"expected the position or identify command (the only "
+                                               f"ones without an ok), found {format_value(text)}")
+                    for i, text in enumerate(self.handshake.no_ok) if text not in queries]
+        if problems:
+            raise cross_check_error(problems)
+        return self
 
 
 # ------------------------------------------------------------------------------ path plan

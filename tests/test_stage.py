@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import copy
 import math
+from importlib import resources
 
 import pytest
 
-from bench.drivers.lineproto import LineConversation, checksum, numbered_line
+from bench.drivers.lineproto import Handshake, LineConversation, checksum, numbered_line
 from bench.benchfile import StageSection, load_bench
 from bench.drivers.profile import load_profile_source
 from bench.drivers.stage import Stage, StageLimits, StageProfile, plan_path
@@ -465,3 +466,55 @@ def test_ok_with_extra_text_is_an_acknowledgement():
     conv = LineConversation(ScriptedTransport(lambda cmd: "ok T:21.2 /0.0"), profile.handshake)
     # reference sheet §10: "ok may carry extra text, e.g. ok T:21.2 /0.0"
     assert conv.command("M105").ok_text == "T:21.2 /0.0"
+
+
+# --------------------------------------------------------- commands answered without an ok
+
+
+def _realtime_profile(tmp_path) -> StageProfile:
+    """gcode-cnc with its status query marked as answered by the status line alone."""
+    text = (resources.files("bench.drivers") / "profiles" / "gcode-cnc.toml").read_text(encoding="utf-8")
+    path = tmp_path / "cnc-realtime.toml"
+    path.write_text(text.replace("line_numbers = false", 'line_numbers = false\nno_ok = ["?"]', 1), encoding="utf-8")
+    return StageProfile.load(path)
+
+
+def test_status_query_without_ok_over_the_loopback_socket(rig, world, tmp_path):
+    state, _ = world
+    profile = _realtime_profile(tmp_path)
+    assert profile.handshake.no_ok == ("?",)
+    sim, stage, recorder = rig("cnc-realtime", profile=profile)
+    stage.connect()
+    assert stage.home() == pytest.approx((0.0, 0.0, 0.06, 0.0))
+    assert sim.received == ["G21", "G90", "$H", "G4 P0", "?"]
+    assert sim.replies[-1].startswith("<Idle|MPos:0.000,0.000,60.000")  # the status line, no ok after it
+    assert stage.move_to(0.120, 0.080, 0.004) == pytest.approx((0.12, 0.08, 0.004, 0.0), abs=1e-5)
+    assert stage.rotate_to(45.0)[3] == pytest.approx(45.0)
+    assert state.probe_m == pytest.approx([0.12, 0.08, 0.004])
+    # every command but the status query got exactly one ok, and each status line was the whole answer
+    assert sim.replies.count("ok") == sum(1 for line in sim.received if line != "?")
+    assert sum(1 for line in sim.replies if line.startswith("<")) == sim.received.count("?")
+
+
+def test_unmarked_status_query_waits_for_an_ok_that_never_comes(rig, tmp_path):
+    profile = _profile("cnc", **{"handshake.timeout": "0.3 s"})
+    sim, stage, recorder = rig("cnc-realtime", profile=profile)
+    stage.connect()
+    with pytest.raises(ReplyTimeoutError, match=r"no acknowledgement to '\?' within 0.3 s \(received: <Alarm\|"):
+        stage.position()
+
+
+def test_no_ok_command_is_sent_without_a_line_number():
+    handshake = Handshake.model_validate({"ok": r"^ok\b", "errors": [r"^error:(?P<code>\d+)"],
+                                          "line_numbers": True, "no_ok": ["?"]})
+    replies = {"?": "<Idle|MPos:1.000,2.000,3.000|FS:0,0>"}
+    transport = ScriptedTransport(lambda cmd: replies.get(cmd, "ok"))
+    conv = LineConversation(transport, handshake)
+    assert conv.command("G4 P0").lines == ()
+    assert conv.command("?").lines == ("<Idle|MPos:1.000,2.000,3.000|FS:0,0>",)
+    assert conv.command("G4 P0").ok_text == ""
+    assert transport.sent == [numbered_line(0, "G4 P0"), "?", numbered_line(1, "G4 P0")]
+    replies["?"] = "error:3"
+    with pytest.raises(InstrumentError) as caught:
+        conv.command("?")
+    assert caught.value.code == 3 and caught.value.command == "?"
