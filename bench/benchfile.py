@@ -13,6 +13,7 @@ from typing import Annotated, Any, Literal, Optional
 import pydantic
 from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, StrictStr
 
+from bench.stagelimits import DEFAULT_A_DEG, StageLimits, limit_problems
 from bench.tomlsource import (
     bench_error,
     check_schema,
@@ -27,7 +28,8 @@ from bench.tomlsource import (
 __all__ = [
     "AnalyzerSection",
     "StageSection",
-    "StageLimits",
+    "StageTravel",
+    "SupplySection",
     "MastSection",
     "TurntableSection",
     "SiteSection",
@@ -101,20 +103,16 @@ class SupplySection(_Model):
     profile: StrictStr = "scpi-supply"
 
 
-class StageLimits(_Model):
-    """Soft limits of the stage per axis, stage metres: ``(min, max)``."""
+class StageTravel(_Model):
+    """``[stage] limits``: soft limits per axis, ``(min, max)`` in stage metres (A in degrees)."""
 
     x_m: LengthPair = Field(alias="x")
     y_m: LengthPair = Field(alias="y")
     z_m: LengthPair = Field(alias="z")
-
-    @pydantic.model_validator(mode="after")
-    def _ordered(self) -> "StageLimits":
-        _ordered_pairs({"x": self.x_m, "y": self.y_m, "z": self.z_m}, "mm", 1e3)
-        return self
+    a_deg: AnglePair = Field(DEFAULT_A_DEG, alias="a")
 
     def as_dict(self) -> dict[str, tuple[float, float]]:
-        """``{"x": (min_m, max_m), "y": ..., "z": ...}``."""
+        """``{"x": (min_m, max_m), "y": ..., "z": ...}`` (linear axes)."""
         return {"x": self.x_m, "y": self.y_m, "z": self.z_m}
 
 
@@ -122,13 +120,15 @@ class StageSection(_Model):
     """``[stage]``: the XYZ probe stage (G-code over a serial port or socket).
 
     ``board_origin_m`` is the stage position of board corner (0, 0) on the board's top
-    surface; ``safe_z_m`` the stage z used for XY travel.
+    surface; ``safe_z_m`` the stage z used for XY travel. ``baudrate`` None means the stage
+    profile's ``[connection] baudrate``. :attr:`safety_limits` is what the stage driver and the
+    planner enforce.
     """
 
     address: Address
     profile: StrictStr = "gcode-cartesian"
-    baudrate: Annotated[StrictInt, Field(gt=0)] = 115200
-    limits: StageLimits
+    baudrate: Optional[Annotated[StrictInt, Field(gt=0)]] = None
+    limits: StageTravel
     safe_z_m: quantity("length") = Field(alias="safe_z")
     max_feed_m_per_s: quantity("speed", positive=True) = Field(alias="max_feed")
     position_tolerance_m: quantity("length", positive=True) = Field(
@@ -138,19 +138,25 @@ class StageSection(_Model):
 
     @pydantic.model_validator(mode="after")
     def _inside(self) -> "StageSection":
-        z_min, z_max = self.limits.z_m
-        problems = []
-        if not z_min <= self.safe_z_m <= z_max:
-            problems.append((("safe_z",), f"expected a height inside the z limits "
-                                          f"[{z_min * 1e3:g} mm, {z_max * 1e3:g} mm], found "
-                                          f"{self.safe_z_m * 1e3:g} mm"))
-        elif self.safe_z_m <= self.board_origin_m[2]:
+        problems = limit_problems(
+            x_m=self.limits.x_m, y_m=self.limits.y_m, z_m=self.limits.z_m, a_deg=self.limits.a_deg,
+            safe_z_m=self.safe_z_m, max_feed_m_per_s=self.max_feed_m_per_s,
+            position_tolerance_m=self.position_tolerance_m)
+        if not problems and self.safe_z_m <= self.board_origin_m[2]:
             problems.append((("safe_z",), f"expected a travel height above the board surface "
                                           f"(z = {self.board_origin_m[2] * 1e3:g} mm), found "
                                           f"{self.safe_z_m * 1e3:g} mm"))
         if problems:
             raise cross_check_error(problems)
         return self
+
+    @property
+    def safety_limits(self) -> StageLimits:
+        """The limits the stage driver and the planner enforce (one type for both)."""
+        return StageLimits(x_m=self.limits.x_m, y_m=self.limits.y_m, z_m=self.limits.z_m,
+                           safe_z_m=self.safe_z_m, max_feed_m_per_s=self.max_feed_m_per_s,
+                           position_tolerance_m=self.position_tolerance_m,
+                           rotary_axis=self.rotary_axis, a_deg=self.limits.a_deg)
 
 
 class MastSection(_Model):

@@ -109,11 +109,8 @@ def capabilities(bench, profiles: dict | None = None):
 
 
 def stage_limits(section):
-    from bench.drivers.stage import StageLimits
-
-    return StageLimits(x_m=tuple(section.limits.x_m), y_m=tuple(section.limits.y_m), z_m=tuple(section.limits.z_m),
-                       safe_z_m=section.safe_z_m, max_feed_m_per_s=section.max_feed_m_per_s,
-                       position_tolerance_m=section.position_tolerance_m, rotary_axis=section.rotary_axis)
+    """The stage's safety limits as the bench file produced them (x/y/z/A, safe z, feed, tolerance)."""
+    return section.safety_limits
 
 
 def connect_station(bench, profiles: dict, *, needs: set[str], wait=None, poll_sleep=None) -> Station:

@@ -26,6 +26,7 @@ from typing import Mapping, Optional
 import numpy as np
 
 from bench.errors import PlanError, SafetyLimitError
+from bench.stagelimits import StageLimits
 from bench.units import format_hz
 
 __all__ = [
@@ -103,20 +104,17 @@ class AnalyzerCaps:
 
 @dataclass(frozen=True)
 class StageCaps:
-    """The XYZ stage: limits and origin in stage metres, speeds in m/s, m/s^2, deg/s.
+    """The XYZ stage: its safety limits, origin in stage metres, speeds in m/s^2 and deg/s.
 
-    ``limits_m`` is ``((x_min, x_max), (y_min, y_max), (z_min, z_max))``; ``board_origin_m``
-    the stage position of board corner (0, 0) on the board's top surface. ``tool_change_s``
-    estimates a probe change (the operator swaps the probe).
+    ``limits`` is the one stage-limits type the bench file produces and the driver enforces
+    (soft limits, travel height, feed ceiling, position tolerance, rotary axis and its limits);
+    ``board_origin_m`` the stage position of board corner (0, 0) on the board's top surface.
+    ``tool_change_s`` estimates a probe change (the operator swaps the probe).
     """
 
-    limits_m: tuple[tuple[float, float], tuple[float, float], tuple[float, float]]
-    safe_z_m: float
-    max_feed_m_per_s: float
+    limits: StageLimits
     accel_m_per_s2: float = 0.5
     board_origin_m: tuple[float, float, float] = (0.0, 0.0, 0.0)
-    position_tolerance_m: float = 5e-5
-    rotary_axis: bool = False
     rotary_speed_deg_per_s: float = 90.0
     tool_change_s: float = 30.0
 
@@ -174,11 +172,8 @@ def bench_caps(bench, *, analyzer: AnalyzerCaps = AnalyzerCaps(),
     stage = None
     if bench.stage is not None:
         section = bench.stage
-        stage = StageCaps(
-            limits_m=(section.limits.x_m, section.limits.y_m, section.limits.z_m),
-            safe_z_m=section.safe_z_m, max_feed_m_per_s=section.max_feed_m_per_s,
-            accel_m_per_s2=stage_accel_m_per_s2, board_origin_m=section.board_origin_m,
-            position_tolerance_m=section.position_tolerance_m, rotary_axis=section.rotary_axis)
+        stage = StageCaps(limits=section.safety_limits, accel_m_per_s2=stage_accel_m_per_s2,
+                          board_origin_m=section.board_origin_m)
     mast = None if bench.mast is None else MastCaps(bench.mast.height_limits_m,
                                                     speed_m_per_s=mast_speed_m_per_s)
     turntable = None if bench.turntable is None else TurntableCaps(
@@ -437,16 +432,18 @@ def stage_move_time_s(start: StagePose | None, end: StagePose, stage: StageCaps)
 
     With no start pose the stage is taken to be parked at safe z above the board origin.
     """
+    limits = stage.limits
+
     def move(distance_m: float) -> float:
-        return trapezoid_move_time_s(distance_m, stage.max_feed_m_per_s, stage.accel_m_per_s2)
+        return trapezoid_move_time_s(distance_m, limits.max_feed_m_per_s, stage.accel_m_per_s2)
 
     if start is None:
-        start = StagePose(stage.board_origin_m[0], stage.board_origin_m[1], stage.safe_z_m,
+        start = StagePose(stage.board_origin_m[0], stage.board_origin_m[1], limits.safe_z_m,
                           end.rotation_deg, end.tool, 0.0, 0.0)
     xy_m = math.hypot(end.x_m - start.x_m, end.y_m - start.y_m)
-    if xy_m > stage.position_tolerance_m:
-        seconds = (move(stage.safe_z_m - start.z_m) + move(xy_m)
-                   + move(stage.safe_z_m - end.z_m))
+    if xy_m > limits.position_tolerance_m:
+        seconds = (move(limits.safe_z_m - start.z_m) + move(xy_m)
+                   + move(limits.safe_z_m - end.z_m))
     else:
         seconds = move(end.z_m - start.z_m)
     seconds += abs(end.rotation_deg - start.rotation_deg) / stage.rotary_speed_deg_per_s

@@ -7,8 +7,13 @@ they may send information lines (a position report), keep-alive lines while a lo
 The host must wait for the acknowledgement before sending the next line (reference sheet §10,
 "One line per command ... Wait for ok").
 
-What the lines look like is data: a :class:`Handshake` built from a profile's ``[handshake]``
-table. This module only runs the conversation:
+Some controllers answer a few commands with one line and no ``ok`` at all, typically a status
+query they take as a real-time character (``?`` answered by ``<Idle|MPos:...>`` only). A
+profile lists those in ``[handshake] no_ok``; the conversation then waits for that one line.
+
+What the lines look like is data: a :class:`Handshake` validated from a profile's
+``[handshake]`` table, and :class:`LineConnection` from its ``[connection]`` table (both read by
+:func:`bench.drivers.profile.load_profile`). This module only runs the conversation:
 
 * :meth:`LineConversation.read_banner` waits for the start-up banner after the port opens
   (boards that reset when the port opens print one; reference sheet §10);
@@ -22,19 +27,24 @@ from __future__ import annotations
 
 import re
 import time
-from dataclasses import dataclass, field
-from typing import Any
+from dataclasses import dataclass
+from typing import Annotated, Any, Optional
 
-from bench.errors import ConfigError, InstrumentError, ReplyTimeoutError
-from bench.units import parse
+import pydantic
+from pydantic import Field, StrictBool, StrictInt, StrictStr
+
+from bench.drivers.profile import Pattern, ProfileModel, ProfileTable, pattern_with
+from bench.errors import InstrumentError, ReplyTimeoutError
+from bench.tomlsource import quantity
 
 __all__ = [
     "Handshake",
+    "LineConnection",
+    "LineDeviceProfile",
     "LineConversation",
     "Reply",
     "checksum",
     "numbered_line",
-    "compile_pattern",
 ]
 
 _MAX_RESENDS = 3
@@ -57,26 +67,16 @@ def numbered_line(line_number: int, command: str) -> str:
     return f"{body}*{checksum(body)}"
 
 
-def compile_pattern(text: Any, *, origin: str, key: str) -> re.Pattern[str]:
-    """Compile a regular expression taken from a profile, as a ConfigError when it is wrong."""
-    if not isinstance(text, str):
-        raise ConfigError(f"expected a regular expression string, found {text!r}", file=origin, key=key)
-    try:
-        return re.compile(text)
-    except re.error as exc:
-        raise ConfigError(f"bad regular expression {text!r}: {exc}", file=origin, key=key) from exc
+def _as_list(value: Any) -> Any:
+    """A single pattern may be written without the list brackets."""
+    return [value] if isinstance(value, str) else value
 
 
-def _patterns(table: dict, name: str, origin: str) -> tuple[re.Pattern[str], ...]:
-    value = table.get(name, [])
-    if isinstance(value, str):
-        value = [value]
-    return tuple(compile_pattern(p, origin=origin, key=f"handshake.{name}[{i}]") for i, p in enumerate(value))
+PatternList = Annotated[tuple[Pattern, ...], pydantic.BeforeValidator(_as_list)]
 
 
-@dataclass(frozen=True)
-class Handshake:
-    """How a controller's reply lines look and how long to wait for them.
+class Handshake(ProfileTable):
+    """How a controller's reply lines look and how long to wait for them (``[handshake]``).
 
     Attributes
     ----------
@@ -91,48 +91,65 @@ class Handshake:
     banner : re.Pattern or None
         Start-up banner; None when the controller prints none.
     timeout_s : float
-        Overall deadline for the reply to an ordinary command, seconds.
+        Overall deadline for the reply to an ordinary command, seconds (key ``timeout``).
     banner_timeout_s : float
-        Deadline for the banner after opening the port, seconds.
+        Deadline for the banner after opening the port, seconds (key ``banner_timeout``).
     line_numbers : bool
         Send ``N<n> <command>*<cs>`` lines (counter reset with ``M110 N0`` by the caller).
     error_codes : dict
         Meaning of numeric error codes, for messages (``{3: "not homed"}``).
+    no_ok : tuple of str
+        Commands (exact text) answered by one reply line and no acknowledgement, such as a
+        status query the controller treats as a real-time character. They are sent without a
+        line number.
     """
 
-    ok: re.Pattern[str]
-    busy: tuple[re.Pattern[str], ...] = ()
-    errors: tuple[re.Pattern[str], ...] = ()
-    resend: re.Pattern[str] | None = None
-    banner: re.Pattern[str] | None = None
-    timeout_s: float = 5.0
-    banner_timeout_s: float = 5.0
-    line_numbers: bool = False
-    error_codes: dict[int, str] = field(default_factory=dict)
+    ok: Pattern
+    busy: PatternList = ()
+    errors: PatternList = ()
+    resend: Optional[pattern_with("line")] = None
+    banner: Optional[Pattern] = None
+    timeout_s: quantity("time", positive=True) = Field(5.0, alias="timeout")
+    banner_timeout_s: quantity("time", positive=True) = Field(5.0, alias="banner_timeout")
+    line_numbers: StrictBool = False
+    error_codes: dict[int, StrictStr] = {}
+    no_ok: tuple[Annotated[StrictStr, Field(min_length=1)], ...] = ()
 
-    @classmethod
-    def from_table(cls, table: dict, *, origin: str) -> "Handshake":
-        """Build from a profile's ``[handshake]`` table (timeouts as text with units)."""
-        if "ok" not in table:
-            raise ConfigError("missing the acknowledgement pattern", file=origin, key="handshake.ok")
-        codes_raw = table.get("error_codes", {})
-        try:
-            codes = {int(k): str(v) for k, v in codes_raw.items()}
-        except (ValueError, AttributeError) as exc:
-            raise ConfigError(f"expected a table of code = \"meaning\", found {codes_raw!r}",
-                              file=origin, key="handshake.error_codes") from exc
-        return cls(
-            ok=compile_pattern(table["ok"], origin=origin, key="handshake.ok"),
-            busy=_patterns(table, "busy", origin),
-            errors=_patterns(table, "errors", origin),
-            resend=(compile_pattern(table["resend"], origin=origin, key="handshake.resend")
-                    if "resend" in table else None),
-            banner=(compile_pattern(table["banner"], origin=origin, key="handshake.banner")
-                    if "banner" in table else None),
-            timeout_s=parse(table.get("timeout", "5 s"), "time"),
-            banner_timeout_s=parse(table.get("banner_timeout", "5 s"), "time"),
-            line_numbers=bool(table.get("line_numbers", False)),
-            error_codes=codes,
+
+class LineConnection(ProfileTable):
+    """Port settings of a line device (``[connection]``).
+
+    Attributes
+    ----------
+    baudrate : int
+        Serial speed, 8N1 (the bench file may replace it).
+    read_termination, write_termination : str
+        Line terminators.
+    open_timeout_s : float
+        Deadline for opening the port, seconds (key ``open_timeout``).
+    """
+
+    baudrate: Annotated[StrictInt, Field(gt=0)]
+    read_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
+    write_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
+    open_timeout_s: quantity("time", positive=True) = Field(5.0, alias="open_timeout")
+
+
+class LineDeviceProfile(ProfileModel):
+    """What every line-protocol profile (stage, mast, turntable) shares: ``[connection]``, ``[handshake]``."""
+
+    connection: LineConnection
+    handshake: Handshake
+
+    def transport_settings(self, baudrate: int | None = None):
+        """Settings to open the device's port (``baudrate`` from the bench file wins)."""
+        from bench.transports import TransportSettings
+
+        conn = self.connection
+        return TransportSettings(
+            timeout_s=self.handshake.timeout_s, open_timeout_s=conn.open_timeout_s,
+            read_termination=conn.read_termination, write_termination=conn.write_termination,
+            baudrate=baudrate or conn.baudrate,
         )
 
 
@@ -229,17 +246,21 @@ class LineConversation:
         Returns
         -------
         Reply
-            Information lines and the acknowledgement's extra text.
+            Information lines and the acknowledgement's extra text. For a command the handshake
+            lists in ``no_ok``, the one reply line (and no acknowledgement text).
 
         Raises
         ------
         InstrumentError
             The controller answered with an error line (address, command, code, text).
         ReplyTimeoutError
-            No acknowledgement before the deadline (the message names the command).
+            No acknowledgement (or, for a ``no_ok`` command, no reply line) before the deadline;
+            the message names the command.
         """
         budget_s = self.handshake.timeout_s if timeout_s is None else timeout_s
         deadline = time.monotonic() + budget_s
+        if text in self.handshake.no_ok:
+            return self._answer_line(text, deadline, budget_s)
         wire = self._wire_text(text)
         self.transport.write(wire)
         lines: list[str] = []
@@ -264,6 +285,24 @@ class LineConversation:
                 resend_pending = True
             elif kind == "line":
                 lines.append(line)
+
+    def _answer_line(self, text: str, deadline: float, budget_s: float) -> Reply:
+        """Send a command answered by one line and no ``ok``; return that line.
+
+        The command goes out without a line number (controllers take such commands outside the
+        numbered stream). Keep-alive, blank and banner lines are skipped; an ``ok`` line is left
+        over from something else and skipped too (it shows in a timeout message).
+        """
+        self.transport.write(text)
+        seen: list[str] = []
+        while True:
+            line = self._read(deadline, text, budget_s, seen)
+            kind, match = self._classify(line)
+            if kind == "error":
+                raise self._error(text, match)
+            if kind == "line":
+                return Reply(text, (line,))
+            seen.append(line)
 
     def send_without_reply(self, text: str) -> None:
         """Write a line and wait for nothing (emergency stop: the controller may never answer)."""
@@ -319,29 +358,3 @@ class LineConversation:
             meaning = self.handshake.error_codes[code]
             text = f"{text}: {meaning}" if text else meaning
         return InstrumentError(self.address, command, code, text or match.group(0))
-
-
-class LineDeviceProfile:
-    """What every line-protocol profile (stage, mast, turntable) shares: loading and port settings.
-
-    Subclasses are frozen dataclasses with ``handshake``, ``open_timeout_s``, ``read_termination``,
-    ``write_termination`` and ``baudrate`` fields and a ``from_data(data, origin)`` classmethod.
-    """
-
-    @classmethod
-    def load(cls, name_or_path, *, base_dir=None):
-        """Read a built-in profile by name or a profile file by path."""
-        from bench.drivers.profile import load_profile_data
-
-        data, origin = load_profile_data(name_or_path, base_dir=base_dir)
-        return cls.from_data(data, origin)
-
-    def transport_settings(self, baudrate: int | None = None):
-        """Settings to open the device's port (``baudrate`` from the bench file wins)."""
-        from bench.transports import TransportSettings
-
-        return TransportSettings(
-            timeout_s=self.handshake.timeout_s, open_timeout_s=self.open_timeout_s,
-            read_termination=self.read_termination, write_termination=self.write_termination,
-            baudrate=baudrate or self.baudrate,
-        )

@@ -11,26 +11,26 @@ position back and checks it against the target.
 from __future__ import annotations
 
 import math
+import re
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Literal, Optional
 
-from bench.drivers.lineproto import Handshake, LineConversation, LineDeviceProfile, compile_pattern
+import pydantic
+from pydantic import Field, StrictFloat, StrictInt, StrictStr
+
+from bench.drivers.lineproto import LineConversation, LineDeviceProfile
+from bench.drivers.profile import ProfileTable, pattern_with, template_with
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
+from bench.tomlsource import cross_check_error, format_value, quantity
 from bench.transports import open_transport
-from bench.units import parse
 
-__all__ = ["AxisDialect", "Mast", "MastLimits", "PositionerProfile", "Turntable", "TurntableLimits"]
+__all__ = ["AxisDialect", "BusyDialect", "Mast", "MastDialect", "MastLimits", "PolarizationCodes",
+           "PositionerProfile", "Turntable", "TurntableDialect", "TurntableLimits"]
 
-# wire unit -> (numbers per SI unit, dimension of a value, dimension of a speed)
-_WIRE_UNITS = {
-    "m": (1.0, "length", "speed"),
-    "cm": (1e2, "length", "speed"),
-    "mm": (1e3, "length", "speed"),
-    "deg": (1.0, "angle", "angular_speed"),
-}
-POLARIZATIONS = ("horizontal", "vertical")
+# numbers on the wire per SI unit (metres or degrees)
+_WIRE_PER_SI = {"m": 1.0, "cm": 1e2, "mm": 1e3, "deg": 1.0}
 
 
 # ---------------------------------------------------------------------------------- limits
@@ -46,13 +46,6 @@ class MastLimits:
         if not self.height_m[0] < self.height_m[1]:
             raise ConfigError(f"mast height_limits: expected min < max, found {list(self.height_m)} m")
 
-    @classmethod
-    def from_bench(cls, table: dict[str, Any]) -> "MastLimits":
-        """Build from the bench file's ``[mast]`` table."""
-        if "height_limits" not in table:
-            raise ConfigError("missing key 'height_limits'", key="mast.height_limits")
-        return cls(tuple(parse(v, "length") for v in table["height_limits"]))
-
 
 @dataclass(frozen=True)
 class TurntableLimits:
@@ -64,20 +57,41 @@ class TurntableLimits:
         if not self.azimuth_deg[0] < self.azimuth_deg[1]:
             raise ConfigError(f"turntable azimuth_limits: expected min < max, found {list(self.azimuth_deg)} deg")
 
-    @classmethod
-    def from_bench(cls, table: dict[str, Any]) -> "TurntableLimits":
-        """Build from the bench file's ``[turntable]`` table."""
-        if "azimuth_limits" not in table:
-            raise ConfigError("missing key 'azimuth_limits'", key="turntable.azimuth_limits")
-        return cls(tuple(parse(v, "angle") for v in table["azimuth_limits"]))
-
 
 # --------------------------------------------------------------------------------- profile
 
 
-@dataclass(frozen=True)
-class AxisDialect:
-    """Commands of one axis (mast height or turntable azimuth).
+class BusyDialect(ProfileTable):
+    """``[busy]``: the busy poll, its deadline, and the identify and stop commands.
+
+    Attributes
+    ----------
+    query : str
+        Busy query; its answer must match ``reply``.
+    reply : re.Pattern
+        Group ``busy`` holds the state; equal to ``busy_value`` means moving.
+    busy_value : str
+        Value of ``busy`` while anything moves.
+    poll_interval_s : float
+        Time between polls, seconds (key ``poll_interval``).
+    time_factor, time_margin_s : float
+        Wait deadline = ``time_factor`` x expected time + ``time_margin_s`` (s).
+    identify, stop : str
+        Identification query; stop any motion.
+    """
+
+    query: template_with() = "BUSY?"
+    reply: pattern_with("busy") = re.compile(r"^BUSY\s+(?P<busy>[01])$")
+    busy_value: Annotated[StrictStr, Field(min_length=1)] = "1"
+    poll_interval_s: quantity("time", positive=True) = Field(0.25, alias="poll_interval")
+    time_factor: Annotated[StrictFloat, Field(ge=1.0)] = 2.0
+    time_margin_s: quantity("time", non_negative=True) = Field(10.0, alias="time_margin")
+    identify: template_with() = "ID?"
+    stop: template_with() = "STOP"
+
+
+class AxisDialect(ProfileTable):
+    """Commands of one axis (mast height or turntable azimuth); see the subclasses for units.
 
     Attributes
     ----------
@@ -85,109 +99,97 @@ class AxisDialect:
         Move template (``{value}`` in the wire unit) and position query.
     reply : re.Pattern
         Parses the query's answer; group ``value`` in the wire unit.
-    wire_per_si : float
-        Numbers on the wire per SI unit (1000 for mm against metres).
+    unit : str
+        Unit of the numbers on the wire.
     decimals : int
         Decimals of the value in the move command.
     speed_per_s : float
-        Slowest speed expected, SI units per second (deadline only).
+        Slowest speed expected, SI units per second (deadline and planner estimate only).
     tolerance : float
         Accepted difference between target and read-back, SI units.
     """
 
-    move: str
-    query: str
-    reply: Any
-    wire_per_si: float
-    decimals: int
-    speed_per_s: float
-    tolerance: float
+    move: template_with("value")
+    query: template_with()
+    reply: pattern_with("value")
+    decimals: Annotated[StrictInt, Field(ge=0, le=6)] = 1
 
-    @classmethod
-    def from_table(cls, table: dict[str, Any], *, origin: str, key: str) -> "AxisDialect":
-        """Build from a profile's ``[mast]`` or ``[turntable]`` table."""
-        unit = table.get("unit")
-        if unit not in _WIRE_UNITS:
-            raise ConfigError(f"expected one of {', '.join(_WIRE_UNITS)}, found {unit!r}", file=origin,
-                              key=f"{key}.unit")
-        scale, value_dim, speed_dim = _WIRE_UNITS[unit]
-        try:
-            return cls(
-                move=str(table["move"]), query=str(table["query"]),
-                reply=compile_pattern(table["reply"], origin=origin, key=f"{key}.reply"),
-                wire_per_si=scale, decimals=int(table.get("decimals", 1)),
-                speed_per_s=parse(table["speed"], speed_dim),
-                tolerance=parse(table["tolerance"], value_dim),
-            )
-        except KeyError as exc:
-            raise ConfigError(f"missing key {exc.args[0]!r}", file=origin, key=f"{key}.{exc.args[0]}") from exc
+    @property
+    def wire_per_si(self) -> float:
+        """Numbers on the wire per SI unit (1000 for mm against metres)."""
+        return _WIRE_PER_SI[self.unit]
 
 
-@dataclass(frozen=True)
+class PolarizationCodes(ProfileTable):
+    """``polarization_codes``: the wire code of each polarization."""
+
+    horizontal: Annotated[StrictStr, Field(min_length=1)] = "H"
+    vertical: Annotated[StrictStr, Field(min_length=1)] = "V"
+
+    @pydantic.model_validator(mode="after")
+    def _distinct(self) -> "PolarizationCodes":
+        if self.horizontal == self.vertical:
+            raise cross_check_error([(("vertical",), f"expected a code other than horizontal's, found "
+                                                     f"{format_value(self.vertical)} for both")])
+        return self
+
+    def as_dict(self) -> dict[str, str]:
+        """``{"horizontal": code, "vertical": code}``."""
+        return {"horizontal": self.horizontal, "vertical": self.vertical}
+
+
+class MastDialect(AxisDialect):
+    """``[mast]``: height in metres (``unit`` m, cm or mm on the wire, speed in m/s) and polarization.
+
+    Attributes
+    ----------
+    polarization, polarization_query : str
+        ``{code}`` template and query.
+    polarization_reply : re.Pattern
+        Group ``code`` holds the current code.
+    polarization_codes : PolarizationCodes
+        Codes of ``horizontal`` and ``vertical``.
+    polarization_time_s : float
+        Longest polarization switch expected, seconds.
+    """
+
+    unit: Literal["m", "cm", "mm"]
+    speed_per_s: quantity("speed", positive=True) = Field(alias="speed")
+    tolerance: quantity("length", positive=True)
+    polarization: template_with("code") = "POL {code}"
+    polarization_query: template_with() = "POL?"
+    polarization_reply: pattern_with("code") = re.compile(r"^POL\s+(?P<code>\w+)$")
+    polarization_codes: PolarizationCodes = PolarizationCodes()
+    polarization_time_s: quantity("time", positive=True) = Field(10.0, alias="polarization_time")
+
+
+class TurntableDialect(AxisDialect):
+    """``[turntable]``: azimuth in degrees (``unit`` deg, speed in deg/s)."""
+
+    unit: Literal["deg"]
+    speed_per_s: quantity("angular_speed", positive=True) = Field(alias="speed")
+    tolerance: quantity("angle", positive=True)
+
+
 class PositionerProfile(LineDeviceProfile):
-    """A line-positioner dialect (``kind = "line-positioner"``)."""
+    """A line-positioner dialect (``kind = "line-positioner"``), read by :meth:`load`.
 
-    name: str
-    description: str
-    handshake: Handshake
-    busy_query: str
-    busy_reply: Any
-    busy_value: str
-    poll_interval_s: float
-    time_factor: float
-    time_margin_s: float
-    stop: str
-    identify: str
-    mast: AxisDialect | None
-    turntable: AxisDialect | None
-    polarization: str
-    polarization_query: str
-    polarization_reply: Any
-    polarization_codes: dict[str, str]
-    polarization_time_s: float
-    baudrate: int = 9600
-    read_termination: str = "\n"
-    write_termination: str = "\n"
-    open_timeout_s: float = 5.0
+    Attributes
+    ----------
+    connection, handshake : LineConnection, Handshake
+        Port settings and reply patterns.
+    busy : BusyDialect
+        Busy poll, identify and stop.
+    mast : MastDialect or None
+        Height and polarization commands (None: the profile serves no mast).
+    turntable : TurntableDialect or None
+        Azimuth commands (None: the profile serves no turntable).
+    """
 
-
-    @classmethod
-    def from_data(cls, data: dict[str, Any], origin: str) -> "PositionerProfile":
-        """Build from parsed TOML; ConfigError names the file and key of any mistake."""
-        if data.get("schema") != 1 or data.get("kind") != "line-positioner":
-            raise ConfigError(f"expected schema = 1 and kind = \"line-positioner\", found schema = "
-                              f"{data.get('schema')!r}, kind = {data.get('kind')!r}", file=origin)
-        busy, mast, conn = data.get("busy", {}), data.get("mast", {}), data.get("connection", {})
-        codes = dict(mast.get("polarization_codes", {"horizontal": "H", "vertical": "V"}))
-        if sorted(codes) != sorted(POLARIZATIONS):
-            raise ConfigError(f"expected codes for horizontal and vertical, found {codes!r}", file=origin,
-                              key="mast.polarization_codes")
-        return cls(
-            name=origin, description=str(data.get("description", "")),
-            handshake=Handshake.from_table(data.get("handshake", {}), origin=origin),
-            busy_query=str(busy.get("query", "BUSY?")),
-            busy_reply=compile_pattern(busy.get("reply", r"^BUSY\s+(?P<busy>[01])$"), origin=origin,
-                                       key="busy.reply"),
-            busy_value=str(busy.get("busy_value", "1")),
-            poll_interval_s=parse(busy.get("poll_interval", "250 ms"), "time"),
-            time_factor=float(busy.get("time_factor", 2.0)),
-            time_margin_s=parse(busy.get("time_margin", "10 s"), "time"),
-            stop=str(busy.get("stop", "STOP")), identify=str(busy.get("identify", "ID?")),
-            mast=AxisDialect.from_table(mast, origin=origin, key="mast") if mast else None,
-            turntable=(AxisDialect.from_table(data["turntable"], origin=origin, key="turntable")
-                       if "turntable" in data else None),
-            polarization=str(mast.get("polarization", "POL {code}")),
-            polarization_query=str(mast.get("polarization_query", "POL?")),
-            polarization_reply=compile_pattern(mast.get("polarization_reply", r"^POL\s+(?P<code>\w+)$"),
-                                               origin=origin, key="mast.polarization_reply"),
-            polarization_codes={k: str(v) for k, v in codes.items()},
-            polarization_time_s=parse(mast.get("polarization_time", "10 s"), "time"),
-            baudrate=int(conn.get("baudrate", 9600)),
-            read_termination=str(conn.get("read_termination", "\n")),
-            write_termination=str(conn.get("write_termination", "\n")),
-            open_timeout_s=parse(conn.get("open_timeout", "5 s"), "time"),
-        )
-
+    kind: Literal["line-positioner"]
+    busy: BusyDialect = BusyDialect()
+    mast: Optional[MastDialect] = None
+    turntable: Optional[TurntableDialect] = None
 
 
 # -------------------------------------------------------------------------------- drivers
@@ -206,7 +208,7 @@ class _LinePositioner:
         axis = getattr(profile, self._axis_name)
         if axis is None:
             raise ConfigError(f"profile has no [{self._axis_name}] table", file=profile.name, key=self._axis_name)
-        self._axis: AxisDialect = axis
+        self._axis = axis
 
     @classmethod
     def open(cls, address: str, profile: PositionerProfile, limits, *, baudrate: int | None = None,
@@ -225,12 +227,12 @@ class _LinePositioner:
 
     def identify(self) -> str:
         """The controller's identification line."""
-        reply = self._conv.command(self.profile.identify)
+        reply = self._conv.command(self.profile.busy.identify)
         return "; ".join(reply.lines) or reply.ok_text
 
     def stop(self) -> None:
         """Stop any motion where it is."""
-        self._conv.command(self.profile.stop)
+        self._conv.command(self.profile.busy.stop)
 
     def close(self) -> None:
         """Close the transport."""
@@ -238,24 +240,24 @@ class _LinePositioner:
 
     def is_busy(self) -> bool:
         """True while the controller reports motion."""
-        reply = self._conv.command(self.profile.busy_query)
-        match = reply.find(self.profile.busy_reply)
+        reply = self._conv.command(self.profile.busy.query)
+        match = reply.find(self.profile.busy.reply)
         if match is None:
-            raise InstrumentError(self.address, self.profile.busy_query, None,
+            raise InstrumentError(self.address, self.profile.busy.query, None,
                                   f"expected a busy report, found {' | '.join(reply.lines) or '(no lines)'!r}")
-        return match.group("busy") == self.profile.busy_value
+        return match.group("busy") == self.profile.busy.busy_value
 
     def _wait_idle(self, command: str, expected_s: float) -> None:
         """Poll until idle; deadline = factor x expected time + margin, also as a poll count."""
-        deadline_s = self.profile.time_factor * expected_s + self.profile.time_margin_s
-        max_polls = math.ceil(deadline_s / self.profile.poll_interval_s) + 1
+        deadline_s = self.profile.busy.time_factor * expected_s + self.profile.busy.time_margin_s
+        max_polls = math.ceil(deadline_s / self.profile.busy.poll_interval_s) + 1
         end = time.monotonic() + deadline_s
         for _ in range(max_polls):
             if not self.is_busy():
                 return
             if time.monotonic() > end:
                 break
-            self._sleep(self.profile.poll_interval_s)
+            self._sleep(self.profile.busy.poll_interval_s)
         raise ReplyTimeoutError(f"{self.address}: {command!r} still moving after the {deadline_s:g} s deadline")
 
     def _read_axis(self) -> float:
@@ -323,25 +325,25 @@ class Mast(_LinePositioner):
 
     def set_polarization(self, polarization: str) -> str:
         """Turn the antenna to ``"horizontal"`` or ``"vertical"``, wait, and check it."""
-        codes = self.profile.polarization_codes
+        codes = self._axis.polarization_codes.as_dict()
         if polarization not in codes:
             raise PlanError(f"polarization must be 'horizontal' or 'vertical', found {polarization!r}")
-        command = self.profile.polarization.format(code=codes[polarization])
+        command = self._axis.polarization.format(code=codes[polarization])
         self._conv.command(command)
-        self._wait_idle(command, self.profile.polarization_time_s)
+        self._wait_idle(command, self._axis.polarization_time_s)
         reached = self.polarization()
         if reached != polarization:
-            raise InstrumentError(self.address, self.profile.polarization_query, None,
+            raise InstrumentError(self.address, self._axis.polarization_query, None,
                                   f"expected {polarization}, read back {reached}")
         return reached
 
     def polarization(self) -> str:
         """Current polarization, ``"horizontal"`` or ``"vertical"``."""
-        reply = self._conv.command(self.profile.polarization_query)
-        match = reply.find(self.profile.polarization_reply)
-        by_code = {code: name for name, code in self.profile.polarization_codes.items()}
+        reply = self._conv.command(self._axis.polarization_query)
+        match = reply.find(self._axis.polarization_reply)
+        by_code = {code: name for name, code in self._axis.polarization_codes.as_dict().items()}
         if match is None or match.group("code") not in by_code:
-            raise InstrumentError(self.address, self.profile.polarization_query, None,
+            raise InstrumentError(self.address, self._axis.polarization_query, None,
                                   f"expected one of {sorted(by_code)}, found {' | '.join(reply.lines)!r}")
         return by_code[match.group("code")]
 

@@ -5,10 +5,15 @@ report format, reply patterns, deadlines) comes from a TOML profile such as
 ``gcode-cartesian`` or ``gcode-cnc``. Millimetres and mm/min appear only in the G-code text;
 everything else is metres, seconds and degrees.
 
-Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLimits`):
+The profile is a frozen model (:class:`StageProfile`) read by
+:func:`bench.drivers.profile.load_profile`: a misspelt key is refused with file, line and a
+suggestion.
 
-* a target outside the soft limits is refused with :class:`~bench.errors.SafetyLimitError`
-  before a single byte is sent;
+Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLimits`, the one
+type :mod:`bench.benchfile` produces, ``bench.stage.safety_limits``):
+
+* a target outside the soft limits, the rotary (A) limits included, is refused with
+  :class:`~bench.errors.SafetyLimitError` before a single byte is sent;
 * no move before the stage has been homed in this session;
 * an XY move happens at the travel height: Z goes up to ``safe_z`` first (never down to it
   when already higher), then XY, then Z down to the target;
@@ -20,188 +25,140 @@ Safety rules (from the bench file's ``[stage]`` table, given as :class:`StageLim
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Literal
 
-from bench.drivers.lineproto import Handshake, LineConversation, LineDeviceProfile, compile_pattern
-from bench.errors import ConfigError, InstrumentError, PlanError, SafetyLimitError
+import pydantic
+from pydantic import Field, StrictFloat, StrictInt
+
+from bench.drivers.lineproto import LineConversation, LineDeviceProfile
+from bench.drivers.profile import ProfileTable, pattern_with, template_with
+from bench.errors import InstrumentError, PlanError, SafetyLimitError
+from bench.stagelimits import StageLimits
+from bench.tomlsource import cross_check_error, format_value, quantity
 from bench.transports import open_transport
-from bench.units import parse
 
-__all__ = ["StageLimits", "StageProfile", "Stage", "plan_path"]
+__all__ = ["StageCommands", "StageLimits", "StagePosition", "StageProfile", "StageRotary", "StageTiming",
+           "Stage", "plan_path"]
 
 _AXES = ("x", "y", "z")
-_COMMANDS = ("units_mm", "absolute", "home", "move", "wait", "position", "dwell", "dwell_unit",
-             "tool_change", "motors_off", "emergency_stop")
-
-
-# ---------------------------------------------------------------------------------- limits
-
-
-@dataclass(frozen=True)
-class StageLimits:
-    """Safety values of one stage, from the bench file's ``[stage]`` table.
-
-    Attributes
-    ----------
-    x_m, y_m, z_m : tuple of float
-        Soft limits (min, max) of each axis in stage coordinates, metres.
-    safe_z_m : float
-        Travel height for XY moves (stage z), metres.
-    max_feed_m_per_s : float
-        Highest feed the driver may command, m/s.
-    position_tolerance_m : float
-        Largest accepted difference between target and reported position, metres.
-    rotary_axis : bool
-        The stage has an A axis that turns the probe.
-    a_deg : tuple of float
-        Soft limits of the A axis, degrees.
-    """
-
-    x_m: tuple[float, float]
-    y_m: tuple[float, float]
-    z_m: tuple[float, float]
-    safe_z_m: float
-    max_feed_m_per_s: float
-    position_tolerance_m: float
-    rotary_axis: bool = False
-    a_deg: tuple[float, float] = (-360.0, 360.0)
-
-    def __post_init__(self) -> None:
-        for name in ("x_m", "y_m", "z_m", "a_deg"):
-            low, high = getattr(self, name)
-            if not low < high:
-                raise ConfigError(f"stage limits {name}: expected min < max, found [{low}, {high}]")
-        if not self.z_m[0] <= self.safe_z_m <= self.z_m[1]:
-            raise ConfigError(f"stage safe_z {self.safe_z_m * 1e3:g} mm lies outside the z limits "
-                              f"[{self.z_m[0] * 1e3:g}, {self.z_m[1] * 1e3:g}] mm")
-        if not self.max_feed_m_per_s > 0:
-            raise ConfigError(f"stage max_feed: expected > 0 mm/s, found {self.max_feed_m_per_s * 1e3:g} mm/s")
-        if not self.position_tolerance_m > 0:
-            raise ConfigError("stage position_tolerance: expected > 0 mm, "
-                              f"found {self.position_tolerance_m * 1e3:g} mm")
-
-    @classmethod
-    def from_bench(cls, table: dict[str, Any]) -> "StageLimits":
-        """Build from a bench file's ``[stage]`` table (quantities as text with units)."""
-        try:
-            limits = table["limits"]
-            axes = {a: tuple(parse(v, "length") for v in limits[a]) for a in _AXES}
-            rotary = table.get("rotary_limits", ["-360 deg", "360 deg"])
-            return cls(
-                x_m=axes["x"], y_m=axes["y"], z_m=axes["z"],
-                safe_z_m=parse(table["safe_z"], "length"),
-                max_feed_m_per_s=parse(table["max_feed"], "speed"),
-                position_tolerance_m=parse(table.get("position_tolerance", "0.05 mm"), "length"),
-                rotary_axis=bool(table.get("rotary_axis", False)),
-                a_deg=tuple(parse(v, "angle") for v in rotary),
-            )
-        except KeyError as exc:
-            raise ConfigError(f"missing key {exc.args[0]!r}", key=f"stage.{exc.args[0]}") from exc
-
-    def axis_limits_m(self, axis: str) -> tuple[float, float]:
-        """(min, max) of ``axis`` ('x', 'y' or 'z'), metres."""
-        return getattr(self, f"{axis}_m")
 
 
 # --------------------------------------------------------------------------------- profile
 
 
-@dataclass(frozen=True)
-class StageProfile(LineDeviceProfile):
-    """A G-code dialect, read from a ``kind = "gcode-stage"`` profile.
+class StageCommands(ProfileTable):
+    """``[commands]``: G-code spellings; templates hold exactly the ``{fields}`` named.
 
     Attributes
     ----------
-    name : str
-        Where the profile came from (``builtin:<name>`` or a path).
-    description : str
-        One line describing the dialect.
-    handshake : Handshake
-        Reply patterns and deadlines.
-    commands : dict of str
-        Command templates (``move`` takes ``{axes}`` and ``{feed}``, ``dwell`` takes ``{dwell}``,
-        ``tool_change`` takes ``{tool}``).
-    position_reply : re.Pattern
-        Parses the position report; groups ``x``, ``y``, ``z`` in mm and optional ``a`` in deg.
-    decimals : int
-        Decimals of millimetre values in G-code words.
-    rotary_letter : str
-        Letter of the rotary axis.
-    rotary_feed_deg_per_s, rotary_tolerance_deg : float
-        Rotation rate and accepted angle error.
-    home_timeout_s, tool_change_timeout_s : float
-        Reply deadlines of homing and tool change, seconds.
-    accel_m_per_s2 : float
-        Lowest acceleration expected; used only to bound reply deadlines.
-    move_time_factor, move_time_margin_s : float
-        Reply deadline of a move = factor x estimated time + margin.
-    baudrate : int
-        Default serial speed (the bench file may override it).
-    read_termination, write_termination : str
-        Line terminators.
-    open_timeout_s : float
-        Deadline for opening the port.
+    units_mm, absolute : str
+        Select millimetres and absolute coordinates (sent after the banner).
+    home : str
+        Homing command (awaited up to ``[timing] home_timeout``).
+    move : str
+        ``{axes}`` (only the axes that change) and ``{feed}`` (mm/min, or deg/min for a rotation).
+    wait : str
+        Waits until buffered moves end; its ``ok`` means the motion is over.
+    position : str
+        Position report.
+    identify : str
+        Identification (optional).
+    dwell : str
+        Pause, ``{dwell}`` in ``dwell_unit`` (``"s"`` or ``"ms"``).
+    tool_change : str
+        Mount probe ``{tool}``.
+    motors_off, emergency_stop : str
+        Switch the motors off; stop at once (both clear the homed state).
+    line_number_reset : str
+        Resets the line counter when ``[handshake] line_numbers`` is true (optional).
     """
 
-    name: str
-    description: str
-    handshake: Handshake
-    commands: dict[str, str]
-    position_reply: Any
-    decimals: int
-    rotary_letter: str
-    rotary_feed_deg_per_s: float
-    rotary_tolerance_deg: float
-    home_timeout_s: float
-    tool_change_timeout_s: float
-    accel_m_per_s2: float
-    move_time_factor: float
-    move_time_margin_s: float
-    baudrate: int = 115200
-    read_termination: str = "\n"
-    write_termination: str = "\n"
-    open_timeout_s: float = 5.0
+    units_mm: template_with()
+    absolute: template_with()
+    home: template_with()
+    move: template_with("axes", "feed")
+    wait: template_with()
+    position: template_with()
+    identify: template_with() = "M115"
+    dwell: template_with("dwell")
+    dwell_unit: Literal["s", "ms"]
+    tool_change: template_with("tool")
+    motors_off: template_with()
+    emergency_stop: template_with()
+    line_number_reset: template_with() = "M110 N0"
+
+    def __getitem__(self, key: str) -> str:
+        """Mapping-style access by key name (``commands["home"]``)."""
+        return getattr(self, key)
 
 
-    @classmethod
-    def from_data(cls, data: dict[str, Any], origin: str) -> "StageProfile":
-        """Build from parsed TOML; ConfigError names the file and key of any mistake."""
-        if data.get("schema") != 1 or data.get("kind") != "gcode-stage":
-            raise ConfigError(f"expected schema = 1 and kind = \"gcode-stage\", found schema = "
-                              f"{data.get('schema')!r}, kind = {data.get('kind')!r}", file=origin)
-        commands = data.get("commands", {})
-        missing = [k for k in _COMMANDS if k not in commands]
-        if missing:
-            raise ConfigError(f"missing command template(s) {', '.join(missing)}", file=origin, key="commands")
-        if commands["dwell_unit"] not in ("s", "ms"):
-            raise ConfigError(f"expected \"s\" or \"ms\", found {commands['dwell_unit']!r}",
-                              file=origin, key="commands.dwell_unit")
-        position = data.get("position", {})
-        rotary = data.get("rotary", {})
-        timing = data.get("timing", {})
-        conn = data.get("connection", {})
-        return cls(
-            name=origin,
-            description=str(data.get("description", "")),
-            handshake=Handshake.from_table(data.get("handshake", {}), origin=origin),
-            commands={k: str(v) for k, v in commands.items()},
-            position_reply=compile_pattern(position.get("reply"), origin=origin, key="position.reply"),
-            decimals=int(position.get("decimals", 3)),
-            rotary_letter=str(rotary.get("axis", "A")),
-            rotary_feed_deg_per_s=parse(rotary.get("feed", "90 deg/s"), "angular_speed"),
-            rotary_tolerance_deg=parse(rotary.get("tolerance", "0.1 deg"), "angle"),
-            home_timeout_s=parse(timing.get("home_timeout", "180 s"), "time"),
-            tool_change_timeout_s=parse(timing.get("tool_change_timeout", "60 s"), "time"),
-            accel_m_per_s2=parse(timing.get("accel", "100 mm/s2"), "acceleration"),
-            move_time_factor=float(timing.get("move_time_factor", 1.5)),
-            move_time_margin_s=parse(timing.get("move_time_margin", "10 s"), "time"),
-            baudrate=int(conn.get("baudrate", 115200)),
-            read_termination=str(conn.get("read_termination", "\n")),
-            write_termination=str(conn.get("write_termination", "\n")),
-            open_timeout_s=parse(conn.get("open_timeout", "5 s"), "time"),
-        )
+class StagePosition(ProfileTable):
+    """``[position]``: the report pattern (groups ``x``, ``y``, ``z`` in mm, optional ``a`` in deg)."""
 
+    reply: pattern_with("x", "y", "z")
+    decimals: Annotated[StrictInt, Field(ge=0, le=6)] = 3
+
+
+class StageRotary(ProfileTable):
+    """``[rotary]``: letter of the rotary axis, rotation rate (deg/s), accepted angle error (deg)."""
+
+    axis: Literal["A", "B", "C"] = "A"
+    feed_deg_per_s: quantity("angular_speed", positive=True) = Field(90.0, alias="feed")
+    tolerance_deg: quantity("angle", positive=True) = Field(0.1, alias="tolerance")
+
+
+class StageTiming(ProfileTable):
+    """``[timing]``: reply deadlines (s), lowest acceleration expected (m/s^2), move deadline terms.
+
+    The deadline of a move is ``move_time_factor * (d/v + v/a) + move_time_margin``.
+    """
+
+    home_timeout_s: quantity("time", positive=True) = Field(180.0, alias="home_timeout")
+    tool_change_timeout_s: quantity("time", positive=True) = Field(60.0, alias="tool_change_timeout")
+    accel_m_per_s2: quantity("acceleration", positive=True) = Field(0.1, alias="accel")
+    move_time_factor: Annotated[StrictFloat, Field(ge=1.0)] = 1.5
+    move_time_margin_s: quantity("time", non_negative=True) = Field(10.0, alias="move_time_margin")
+
+
+class StageProfile(LineDeviceProfile):
+    """A G-code dialect, read from a ``kind = "gcode-stage"`` profile by :meth:`load`.
+
+    Attributes
+    ----------
+    connection : LineConnection
+        Port settings (``[connection]``).
+    handshake : Handshake
+        Reply patterns and deadlines (``[handshake]``).
+    commands : StageCommands
+        Command spellings (``[commands]``).
+    position : StagePosition
+        Position report pattern and decimals of millimetre values in G-code words.
+    rotary : StageRotary
+        Rotary axis letter, rate and tolerance.
+    timing : StageTiming
+        Deadlines and the acceleration used for them and for the planner's estimate.
+    """
+
+    kind: Literal["gcode-stage"]
+    commands: StageCommands
+    position: StagePosition
+    rotary: StageRotary = StageRotary()
+    timing: StageTiming = StageTiming()
+
+    @property
+    def accel_m_per_s2(self) -> float:
+        """Lowest acceleration expected, m/s^2 (``[timing] accel``)."""
+        return self.timing.accel_m_per_s2
+
+    @pydantic.model_validator(mode="after")
+    def _no_ok_only_for_queries(self) -> "StageProfile":
+        queries = (self.commands.position, self.commands.identify)
+        problems = [(("handshake", "no_ok", i), f"expected the position or identify command (the only "
+                                               f"ones without an ok), found {format_value(text)}")
+                    for i, text in enumerate(self.handshake.no_ok) if text not in queries]
+        if problems:
+            raise cross_check_error(problems)
+        return self
 
 
 # ------------------------------------------------------------------------------ path plan
@@ -294,7 +251,7 @@ class Stage:
         """
         banner = self._conv.read_banner()
         if self.profile.handshake.line_numbers:
-            self._conv.reset_line_numbers(self.profile.commands.get("line_number_reset", "M110 N0"))
+            self._conv.reset_line_numbers(self.profile.commands.line_number_reset)
         self._send("units_mm")
         self._send("absolute")
         return banner
@@ -303,7 +260,7 @@ class Stage:
 
     def identify(self) -> str:
         """The controller's identification lines, joined with ``'; '``."""
-        reply = self._conv.command(self.profile.commands.get("identify", "M115"))
+        reply = self._conv.command(self.profile.commands.identify)
         return "; ".join(reply.lines) or reply.ok_text
 
     def home(self) -> tuple[float, ...]:
@@ -315,7 +272,7 @@ class Stage:
             Position after homing, as :meth:`position` returns it.
         """
         self._position = None
-        self._conv.command(self.profile.commands["home"], timeout_s=self.profile.home_timeout_s)
+        self._conv.command(self.profile.commands.home, timeout_s=self.profile.timing.home_timeout_s)
         self._homed = True
         return self.position()
 
@@ -378,9 +335,9 @@ class Stage:
                             f"cannot turn the probe to {angle_deg:g} deg")
         low, high = self.limits.a_deg
         if not low <= angle_deg <= high:
-            raise SafetyLimitError(f"stage {self.profile.rotary_letter} target {angle_deg:g} deg outside "
+            raise SafetyLimitError(f"stage {self.profile.rotary.axis} target {angle_deg:g} deg outside "
                                    f"the rotary limits [{low:g}, {high:g}] deg")
-        rate = rate_deg_per_s or self.profile.rotary_feed_deg_per_s
+        rate = rate_deg_per_s or self.profile.rotary.feed_deg_per_s
         self._require_homed("rotate")
         start = self._known_position()
         x, y, z = start[:3]
@@ -403,15 +360,15 @@ class Stage:
                 x, y, _ = start[:3]
                 self._run_linear(start[:3], [(x, y, self.limits.safe_z_m)], self.limits.max_feed_m_per_s)
         self._position = None
-        self._conv.command(self.profile.commands["tool_change"].format(tool=tool),
-                           timeout_s=self.profile.tool_change_timeout_s)
+        self._conv.command(self.profile.commands.tool_change.format(tool=tool),
+                           timeout_s=self.profile.timing.tool_change_timeout_s)
 
     def dwell(self, seconds: float) -> None:
         """Let the controller pause (after buffered moves end) for ``seconds``."""
         if seconds < 0:
             raise PlanError(f"dwell must be >= 0 s, found {seconds:g} s")
-        value = seconds * 1e3 if self.profile.commands["dwell_unit"] == "ms" else seconds
-        text = self.profile.commands["dwell"].format(dwell=f"{value:.6g}")
+        value = seconds * 1e3 if self.profile.commands.dwell_unit == "ms" else seconds
+        text = self.profile.commands.dwell.format(dwell=f"{value:.6g}")
         self._conv.command(text, timeout_s=seconds + self.profile.handshake.timeout_s)
 
     def position(self) -> tuple[float, ...]:
@@ -437,7 +394,7 @@ class Stage:
         """Send the emergency stop and wait for nothing; the controller needs a reset after."""
         self._homed = False
         self._position = None
-        self._conv.send_without_reply(self.profile.commands["emergency_stop"])
+        self._conv.send_without_reply(self.profile.commands.emergency_stop)
 
     def close(self) -> None:
         """Close the transport (the stage stays where it is)."""
@@ -473,7 +430,7 @@ class Stage:
         return self._position
 
     def _mm(self, value_m: float) -> str:
-        return f"{value_m * 1e3:.{self.profile.decimals}f}"
+        return f"{value_m * 1e3:.{self.profile.position.decimals}f}"
 
     def _run_linear(self, start_m, waypoints, feed_m_per_s: float) -> None:
         """Send linear moves through ``waypoints`` (only the axes that change), then wait."""
@@ -488,33 +445,33 @@ class Stage:
                 length_m = math.dist(previous, point)
                 deadline_s = self._move_deadline_s(length_m, feed_m_per_s)
                 total_s += deadline_s
-                self._conv.command(self.profile.commands["move"].format(axes=" ".join(words), feed=feed_text),
+                self._conv.command(self.profile.commands.move.format(axes=" ".join(words), feed=feed_text),
                                    timeout_s=deadline_s)
             previous = point
         self._wait(total_s)
 
     def _rotate(self, start_deg: float, angle_deg: float, rate_deg_per_s: float) -> None:
         self._position = None
-        words = f"{self.profile.rotary_letter}{angle_deg:.3f}"
+        words = f"{self.profile.rotary.axis}{angle_deg:.3f}"
         feed_text = f"{rate_deg_per_s * 60:.0f}"  # deg/min for a rotary-only move (RS274NGC)
         # deg treated like mm in the deadline estimate: rate in deg/s, accel in deg/s^2 (x1e3)
         deadline_s = self._move_deadline_s(abs(angle_deg - start_deg) * 1e-3, rate_deg_per_s * 1e-3)
-        self._conv.command(self.profile.commands["move"].format(axes=words, feed=feed_text), timeout_s=deadline_s)
+        self._conv.command(self.profile.commands.move.format(axes=words, feed=feed_text), timeout_s=deadline_s)
         self._wait(deadline_s)
 
     def _move_deadline_s(self, length_m: float, feed_m_per_s: float) -> float:
         # d/v + v/a bounds the trapezoidal and the triangular move time from above
-        estimate_s = length_m / feed_m_per_s + feed_m_per_s / self.profile.accel_m_per_s2
-        return self.profile.move_time_factor * estimate_s + self.profile.move_time_margin_s
+        estimate_s = length_m / feed_m_per_s + feed_m_per_s / self.profile.timing.accel_m_per_s2
+        return self.profile.timing.move_time_factor * estimate_s + self.profile.timing.move_time_margin_s
 
     def _wait(self, timeout_s: float) -> None:
-        self._conv.command(self.profile.commands["wait"],
+        self._conv.command(self.profile.commands.wait,
                            timeout_s=max(timeout_s, self.profile.handshake.timeout_s))
 
     def _report(self) -> tuple[float, float, float, float | None]:
-        command = self.profile.commands["position"]
+        command = self.profile.commands.position
         reply = self._conv.command(command)
-        match = reply.find(self.profile.position_reply)
+        match = reply.find(self.profile.position.reply)
         if match is None:
             found = " | ".join(reply.lines) or "(no lines)"
             raise InstrumentError(self.address, command, None,
@@ -531,15 +488,15 @@ class Stage:
         reported = pos[:3] + ((pos[3] or 0.0,) if self.limits.rotary_axis else ())
         tol = self.limits.position_tolerance_m
         misses = [axis for axis, want, got in zip(_AXES, target_m, reported) if abs(want - got) > tol]
-        if angle_deg is not None and abs(angle_deg - (self._position[3] or 0.0)) > self.profile.rotary_tolerance_deg:
-            misses.append(self.profile.rotary_letter.lower())
+        if angle_deg is not None and abs(angle_deg - (self._position[3] or 0.0)) > self.profile.rotary.tolerance_deg:
+            misses.append(self.profile.rotary.axis.lower())
         if misses:
             want = " ".join(f"{a.upper()}{v * 1e3:.3f}" for a, v in zip(_AXES, target_m))
             got = " ".join(f"{a.upper()}{v * 1e3:.3f}" for a, v in zip(_AXES, reported))
             if angle_deg is not None:
-                want += f" {self.profile.rotary_letter}{angle_deg:.3f}"
-                got += f" {self.profile.rotary_letter}{self._position[3] or 0.0:.3f}"
-            raise InstrumentError(self.address, self.profile.commands["position"], None,
+                want += f" {self.profile.rotary.axis}{angle_deg:.3f}"
+                got += f" {self.profile.rotary.axis}{self._position[3] or 0.0:.3f}"
+            raise InstrumentError(self.address, self.profile.commands.position, None,
                                   f"position check failed on {','.join(misses)}: expected {want} mm, "
                                   f"reported {got} mm (tolerance {tol * 1e3:g} mm)")
         return reported

@@ -40,6 +40,8 @@ FORBIDDEN = [
     ("bench.units", ("bench.drivers", "bench.sim", "bench.run", "bench.store", "bench.analysis",
                      "bench.physics", "bench.sequence", "bench.transports")),
     ("bench.errors", ("bench.",)),
+    ("bench.stagelimits", ("bench.drivers", "bench.sim", "bench.run", "bench.store", "bench.analysis",
+                           "bench.benchfile", "bench.planner", "bench.transports", "bench.tomlsource")),
     ("bench.physics", ("bench.drivers", "bench.sim", "bench.run", "bench.store", "bench.analysis")),
     ("bench.drivers", ("bench.run", "bench.runner", "bench.sim", "bench.store", "bench.analysis",
                        "bench.app", "bench.cli", "bench.report")),

@@ -9,6 +9,7 @@ import pytest
 
 from bench.benchfile import load_bench
 from bench.errors import ConfigError
+from bench.stagelimits import StageLimits
 
 MALFORMED = Path(__file__).parent / "malformed"
 DEMO = Path(__file__).parent.parent / "sequences"
@@ -37,6 +38,23 @@ def test_demo_bench_values_in_si():
     assert {n: (p.kind, p.tool) for n, p in bench.probes.items()} == {
         "hloop-10mm": ("h-loop", 1), "hloop-3mm": ("h-loop", 2), "eprobe": ("e-probe", 4)}
     assert bench.warnings == ()
+
+
+def test_stage_section_produces_the_driver_limits():
+    stage = load_bench(DEMO / "demo-bench.toml", check_files=False).stage
+    limits = stage.safety_limits
+    assert isinstance(limits, StageLimits)  # the one type the stage driver and the planner take
+    assert (limits.x_m, limits.y_m, limits.z_m) == (stage.limits.x_m, stage.limits.y_m, stage.limits.z_m)
+    assert (limits.safe_z_m, limits.max_feed_m_per_s, limits.position_tolerance_m) == (
+        stage.safe_z_m, stage.max_feed_m_per_s, stage.position_tolerance_m)
+    assert limits.rotary_axis is True
+    assert limits.a_deg == (-360.0, 360.0)  # no `a` in the demo bench: one turn either way
+
+
+def test_stage_baudrate_defaults_to_the_profile(tmp_path):
+    text = (DEMO / "demo-bench.toml").read_text(encoding="utf-8").replace("baudrate = 115200\n", "")
+    (tmp_path / "bench.toml").write_text(text, encoding="utf-8")
+    assert load_bench(tmp_path / "bench.toml", check_files=False).stage.baudrate is None
 
 
 def test_demo_bench_tables_exist():

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from pathlib import Path
 
@@ -31,15 +32,16 @@ from bench.planning import (
     transfer_time_s,
     trapezoid_move_time_s,
 )
+from bench.stagelimits import StageLimits
 from bench.steps.grid import grid_positions, inside_polygon
 from bench.sequence import load_sequence
 
 DEMO = Path(__file__).parent.parent / "sequences"
 
 # A stage like the demo bench: 300 x 200 x 60 mm, travel at 40 mm, 50 mm/s, 0.5 m/s^2.
-STAGE = StageCaps(limits_m=((0.0, 0.3), (0.0, 0.2), (0.0, 0.06)), safe_z_m=0.04,
-                  max_feed_m_per_s=0.05, accel_m_per_s2=0.5,
-                  board_origin_m=(0.05, 0.04, 0.01), rotary_axis=True)
+STAGE = StageCaps(limits=StageLimits(x_m=(0.0, 0.3), y_m=(0.0, 0.2), z_m=(0.0, 0.06), safe_z_m=0.04,
+                                     max_feed_m_per_s=0.05, rotary_axis=True),
+                  accel_m_per_s2=0.5, board_origin_m=(0.05, 0.04, 0.01))
 PROBES = {"hloop-10mm": ProbeCaps("h-loop", 1), "eprobe": ProbeCaps("e-probe", 3)}
 CAPS = BenchCaps(analyzer=AnalyzerCaps(), stage=STAGE,
                  mast=MastCaps((1.0, 4.0), speed_m_per_s=0.2, polarization_change_s=5.0),
@@ -322,8 +324,8 @@ def test_totals_and_summary_for_the_quick_demo():
 def test_bench_caps_from_the_demo_bench():
     caps = bench_caps(load_bench(DEMO / "demo-bench.toml", check_files=False),
                       stage_accel_m_per_s2=0.8)
-    assert caps.stage.limits_m[0] == pytest.approx((0.0, 0.3))
-    assert caps.stage.accel_m_per_s2 == 0.8 and caps.stage.rotary_axis
+    assert caps.stage.limits.x_m == pytest.approx((0.0, 0.3))
+    assert caps.stage.accel_m_per_s2 == 0.8 and caps.stage.limits.rotary_axis
     assert caps.probes["hloop-3mm"] == ProbeCaps("h-loop", 2)
     assert caps.mast.height_limits_m == (1.0, 4.0)
     assert math.isclose(caps.turntable.limits_deg[1], 360.0)
@@ -348,3 +350,14 @@ def test_segments_always_cover_the_span_within_the_step(start_mhz, span_mhz, rbw
         assert right.start_hz == left.stop_hz
     assert all(s.points <= max_points for s in segments)
     assert max(s.step_hz for s in segments) <= sweep.rbw_hz / 2 * (1 + 1e-9)
+
+
+def test_orientations_outside_the_a_limits_are_refused_at_planning(tmp_path):
+    # the bench file's A-axis limits reach the planner: a 90 deg turn on a stage limited to
+    # +-45 deg is refused before anything moves
+    narrow = dataclasses.replace(STAGE, limits=dataclasses.replace(STAGE.limits, a_deg=(-45.0, 45.0)))
+    caps = dataclasses.replace(CAPS, stage=narrow)
+    sequence = sequence_from(tmp_path, BAND_CD, grid_step('orientations = ["0 deg", "90 deg"]'))
+    with pytest.raises(SafetyLimitError, match=r"A limits \[-45 deg, 45 deg\], found 90 deg"):
+        make_plan(sequence, caps)
+    make_plan(sequence, caps=CAPS)  # within the default one turn either way

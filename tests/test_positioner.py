@@ -2,28 +2,31 @@
 
 from __future__ import annotations
 
+import copy
+
 import pytest
 
 from bench.drivers.lineproto import LineConversation
 from bench.drivers.positioner import Mast, MastLimits, PositionerProfile, Turntable, TurntableLimits
-from bench.drivers.profile import load_profile_data
+from bench.drivers.profile import load_profile_source
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
 from bench.sim.clock import VirtualClock
 from bench.sim.positioner import SimPositioner
 from bench.sim.state import SimState
 from bench.transports import open_transport
 
-# notes/formats.md bench example: [mast] height_limits = ["1 m", "4 m"], [turntable] 0..360 deg
-MAST_LIMITS = MastLimits.from_bench({"height_limits": ["1 m", "4 m"]})
-TABLE_LIMITS = TurntableLimits.from_bench({"azimuth_limits": ["0 deg", "360 deg"]})
+# The demo bench file (sequences/demo-bench.toml): [mast] 1-4 m, [turntable] 0-360 deg.
+MAST_LIMITS = MastLimits((1.0, 4.0))
+TABLE_LIMITS = TurntableLimits((0.0, 360.0))
 
 
 def _profile(**overrides) -> PositionerProfile:
-    data, origin = load_profile_data("line-positioner")
+    """The built-in profile with some keys replaced (``{"busy.time_margin": "1 s"}``), validated."""
+    data = copy.deepcopy(load_profile_source("line-positioner").data)
     for dotted, value in overrides.items():
         table, key = dotted.split(".")
         data[table][key] = value
-    return PositionerProfile.from_data(data, origin)
+    return PositionerProfile.model_validate(data)
 
 
 @pytest.fixture
@@ -60,7 +63,7 @@ def test_limits_from_the_bench_file_example():
     assert MAST_LIMITS.height_m == pytest.approx((1.0, 4.0))
     assert TABLE_LIMITS.azimuth_deg == pytest.approx((0.0, 360.0))
     with pytest.raises(ConfigError, match="min < max"):
-        MastLimits.from_bench({"height_limits": ["4 m", "1 m"]})
+        MastLimits((4.0, 1.0))
 
 
 @pytest.mark.parametrize("height_m", [0.99, 4.01, float("nan")])

@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import copy
 import math
+from importlib import resources
 
 import pytest
 
-from bench.drivers.lineproto import LineConversation, checksum, numbered_line
-from bench.drivers.profile import load_profile_data
+from bench.drivers.lineproto import Handshake, LineConversation, checksum, numbered_line
+from bench.benchfile import StageSection, load_bench
+from bench.drivers.profile import load_profile_source
 from bench.drivers.stage import Stage, StageLimits, StageProfile, plan_path
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
 from bench.sim.clock import VirtualClock
@@ -17,15 +20,17 @@ from bench.transports import ScriptedTransport, open_transport
 
 PROFILES = {"cartesian": "gcode-cartesian", "cnc": "gcode-cnc"}
 
-# The bench-file example of notes/formats.md ([stage] table).
+# The [stage] table of the demo bench file (sequences/demo-bench.toml), with a board origin.
 BENCH_STAGE = {
+    "address": "socket://127.0.0.1:1",
     "limits": {"x": ["0 mm", "300 mm"], "y": ["0 mm", "200 mm"], "z": ["0 mm", "60 mm"]},
     "safe_z": "40 mm",
     "max_feed": "50 mm/s",
     "position_tolerance": "0.05 mm",
+    "board_origin": ["60 mm", "40 mm", "15 mm"],
     "rotary_axis": True,
 }
-LIMITS = StageLimits.from_bench(BENCH_STAGE)
+LIMITS = StageSection.model_validate(BENCH_STAGE).safety_limits
 
 
 class RecordingTransport:
@@ -74,11 +79,12 @@ def world():
 
 
 def _profile(dialect: str, **overrides) -> StageProfile:
-    data, origin = load_profile_data(PROFILES[dialect])
+    """A built-in profile with some keys replaced (``{"handshake.timeout": "0.3 s"}``), validated."""
+    data = copy.deepcopy(load_profile_source(PROFILES[dialect]).data)
     for dotted, value in overrides.items():
         table, key = dotted.split(".")
         data[table][key] = value
-    return StageProfile.from_data(data, origin)
+    return StageProfile.model_validate(data)
 
 
 @pytest.fixture
@@ -87,7 +93,8 @@ def rig(world, request):
     state, clock = world
     opened = []
 
-    def make(dialect="cartesian", wire="tcp", profile=None, transport_cls=RecordingTransport, **sim_kw):
+    def make(dialect="cartesian", wire="tcp", profile=None, transport_cls=RecordingTransport, limits=LIMITS,
+             **sim_kw):
         sim = SimStage(state, clock, dialect=dialect, **sim_kw)
         server = sim.serve_tcp() if wire == "tcp" else sim.serve_pty()
         opened.append(server)
@@ -95,7 +102,7 @@ def rig(world, request):
         address = server.url if wire == "tcp" else server.path
         recorder = transport_cls(open_transport(address, profile.transport_settings()))
         opened.append(recorder)
-        return sim, Stage(recorder, profile, LIMITS), recorder
+        return sim, Stage(recorder, profile, limits), recorder
 
     yield make
     for thing in reversed(opened):
@@ -145,8 +152,10 @@ def test_limits_from_the_bench_file_example():
     assert LIMITS.z_m == pytest.approx((0.0, 0.06))
     assert (LIMITS.safe_z_m, LIMITS.max_feed_m_per_s) == pytest.approx((0.04, 0.05))
     assert LIMITS.position_tolerance_m == pytest.approx(5e-5)
-    with pytest.raises(ConfigError, match="safe_z 80 mm lies outside"):
-        StageLimits.from_bench({**BENCH_STAGE, "safe_z": "80 mm"})
+    assert LIMITS.rotary_axis and LIMITS.a_deg == (-360.0, 360.0)  # no `a` in the table: one turn either way
+    with pytest.raises(ConfigError, match=r"stage.safe_z: expected a height inside the z limits \[0 mm, 60 mm\], "
+                                          r"found 80 mm"):
+        StageLimits(x_m=LIMITS.x_m, y_m=LIMITS.y_m, z_m=LIMITS.z_m, safe_z_m=0.08, max_feed_m_per_s=0.05)
 
 
 # -------------------------------------------------------------------------------- safety
@@ -177,6 +186,45 @@ def test_feed_above_max_feed_is_refused_before_any_byte(rig):
     with pytest.raises(SafetyLimitError, match="60 mm/s outside"):
         stage.move_to(0.1, 0.1, 0.01, feed_m_per_s=0.06)
     assert len(recorder.sent) == sent
+
+
+BENCH_WITH_A_LIMITS = """schema = 1
+name = "rotary limits"
+
+[analyzer]
+address = "TCPIP::127.0.0.1::5025::SOCKET"
+
+[stage]
+address = "socket://127.0.0.1:1"
+safe_z = "40 mm"
+max_feed = "50 mm/s"
+board_origin = ["60 mm", "40 mm", "15 mm"]
+rotary_axis = true
+
+[stage.limits]
+x = ["0 mm", "300 mm"]
+y = ["0 mm", "200 mm"]
+z = ["0 mm", "60 mm"]
+a = ["-90 deg", "90 deg"]
+"""
+
+
+def test_bench_file_rotary_limit_refuses_a_rotation_before_any_byte(rig, tmp_path, world):
+    state, _ = world
+    path = tmp_path / "bench.toml"
+    path.write_text(BENCH_WITH_A_LIMITS, encoding="utf-8")
+    limits = load_bench(path, check_files=False).stage.safety_limits
+    assert limits.a_deg == (-90.0, 90.0)
+    sim, stage, recorder = rig(limits=limits)
+    stage.connect()
+    stage.home()
+    sent, received = len(recorder.sent), sim.bytes_received
+    with pytest.raises(SafetyLimitError, match=r"stage A target 120 deg outside the rotary limits \[-90, 90\] deg"):
+        stage.rotate_to(120.0)
+    assert len(recorder.sent) == sent and sim.bytes_received == received
+    assert state.probe_rotation_deg == 0.0
+    assert stage.rotate_to(-90.0)[3] == pytest.approx(-90.0)  # the limit itself is allowed
+    assert "G1 A-90.000 F5400" in recorder.sent[sent:]
 
 
 def test_unhomed_stage_refuses_to_move(rig):
@@ -418,3 +466,55 @@ def test_ok_with_extra_text_is_an_acknowledgement():
     conv = LineConversation(ScriptedTransport(lambda cmd: "ok T:21.2 /0.0"), profile.handshake)
     # reference sheet §10: "ok may carry extra text, e.g. ok T:21.2 /0.0"
     assert conv.command("M105").ok_text == "T:21.2 /0.0"
+
+
+# --------------------------------------------------------- commands answered without an ok
+
+
+def _realtime_profile(tmp_path) -> StageProfile:
+    """gcode-cnc with its status query marked as answered by the status line alone."""
+    text = (resources.files("bench.drivers") / "profiles" / "gcode-cnc.toml").read_text(encoding="utf-8")
+    path = tmp_path / "cnc-realtime.toml"
+    path.write_text(text.replace("line_numbers = false", 'line_numbers = false\nno_ok = ["?"]', 1), encoding="utf-8")
+    return StageProfile.load(path)
+
+
+def test_status_query_without_ok_over_the_loopback_socket(rig, world, tmp_path):
+    state, _ = world
+    profile = _realtime_profile(tmp_path)
+    assert profile.handshake.no_ok == ("?",)
+    sim, stage, recorder = rig("cnc-realtime", profile=profile)
+    stage.connect()
+    assert stage.home() == pytest.approx((0.0, 0.0, 0.06, 0.0))
+    assert sim.received == ["G21", "G90", "$H", "G4 P0", "?"]
+    assert sim.replies[-1].startswith("<Idle|MPos:0.000,0.000,60.000")  # the status line, no ok after it
+    assert stage.move_to(0.120, 0.080, 0.004) == pytest.approx((0.12, 0.08, 0.004, 0.0), abs=1e-5)
+    assert stage.rotate_to(45.0)[3] == pytest.approx(45.0)
+    assert state.probe_m == pytest.approx([0.12, 0.08, 0.004])
+    # every command but the status query got exactly one ok, and each status line was the whole answer
+    assert sim.replies.count("ok") == sum(1 for line in sim.received if line != "?")
+    assert sum(1 for line in sim.replies if line.startswith("<")) == sim.received.count("?")
+
+
+def test_unmarked_status_query_waits_for_an_ok_that_never_comes(rig, tmp_path):
+    profile = _profile("cnc", **{"handshake.timeout": "0.3 s"})
+    sim, stage, recorder = rig("cnc-realtime", profile=profile)
+    stage.connect()
+    with pytest.raises(ReplyTimeoutError, match=r"no acknowledgement to '\?' within 0.3 s \(received: <Alarm\|"):
+        stage.position()
+
+
+def test_no_ok_command_is_sent_without_a_line_number():
+    handshake = Handshake.model_validate({"ok": r"^ok\b", "errors": [r"^error:(?P<code>\d+)"],
+                                          "line_numbers": True, "no_ok": ["?"]})
+    replies = {"?": "<Idle|MPos:1.000,2.000,3.000|FS:0,0>"}
+    transport = ScriptedTransport(lambda cmd: replies.get(cmd, "ok"))
+    conv = LineConversation(transport, handshake)
+    assert conv.command("G4 P0").lines == ()
+    assert conv.command("?").lines == ("<Idle|MPos:1.000,2.000,3.000|FS:0,0>",)
+    assert conv.command("G4 P0").ok_text == ""
+    assert transport.sent == [numbered_line(0, "G4 P0"), "?", numbered_line(1, "G4 P0")]
+    replies["?"] = "error:3"
+    with pytest.raises(InstrumentError) as caught:
+        conv.command("?")
+    assert caught.value.code == 3 and caught.value.command == "?"

@@ -17,8 +17,12 @@ Two dialects, described by what they do (:data:`DIALECTS`):
     and ``!! <text>`` once halted.
 ``cnc``
     ``$H`` homes (``G28`` goes to the stored home position, homed only); ``G4 P`` in s and
-    ``G4 P0`` waits; ``?`` reports ``<Idle|MPos:x,y,z,a|FS:feed,0>`` (the actual position);
-    ``$I`` identifies; errors ``error:<code>`` with the codes of :data:`ERROR_CODES`.
+    ``G4 P0`` waits; ``?`` reports ``<Idle|MPos:x,y,z,a|FS:feed,0>`` (the actual position),
+    then ``ok``; ``$I`` identifies; errors ``error:<code>`` with the codes of
+    :data:`ERROR_CODES`.
+``cnc-realtime``
+    As ``cnc``, but ``?`` is a real-time status query: it is answered by the status line alone,
+    with no ``ok`` (a profile marks it in ``[handshake] no_ok``).
 
 Homing: Z rises to the top of its travel first, then X and Y go to their minimum; the home
 position is (x_min, y_min, z_max), angle 0.
@@ -32,6 +36,7 @@ port" and prints the banner again, like a board that resets when the port opens.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import re
 import threading
@@ -123,12 +128,15 @@ class SimDialect:
     identify_word: str        # "M115" or "$I"
     busy_interval_s: float | None  # keep-alive period during long waits (virtual s)
     numbered_errors: bool     # "error:<code>" instead of "Error:<text>"
+    status_ok: bool = True    # the "?" status report is followed by "ok" (False: the line alone)
 
+
+_CNC = SimDialect("cnc", "motion controller 1.0 (simulated) ready", "$H", 1.0, False, "status", "$I", None, True)
 
 DIALECTS = {
     "cartesian": SimDialect("cartesian", "start", "G28", 1e-3, True, "m114", "M115", 2.0, False),
-    "cnc": SimDialect("cnc", "motion controller 1.0 (simulated) ready", "$H", 1.0, False, "status", "$I",
-                      None, True),
+    "cnc": _CNC,
+    "cnc-realtime": dataclasses.replace(_CNC, name="cnc-realtime", status_ok=False),
 }
 
 
@@ -202,7 +210,7 @@ class SimStage(LineEngine):
     banner : str, optional
         Start-up banner (default: the dialect's).
     dialect : str or SimDialect
-        ``"cartesian"`` or ``"cnc"``.
+        ``"cartesian"``, ``"cnc"`` or ``"cnc-realtime"`` (see :data:`DIALECTS`).
     rotary_axis : bool
         The stage has an A axis.
     max_rotary_deg_per_s, rotary_accel_deg_per_s2 : float
@@ -237,6 +245,7 @@ class SimStage(LineEngine):
         self.planner_slots = planner_slots
         self.faults = StageFaults()
         self.received: list[str] = []
+        self.replies: list[str] = []
         self.bytes_received = 0
         self.trajectory: list[MoveSegment] = []
         self._lock = threading.RLock()
@@ -257,19 +266,28 @@ class SimStage(LineEngine):
     # ----------------------------------------------------------------------- server side
 
     def handle(self, line: str, emit: Callable[[str], None]) -> None:
-        """Act on one received line; reply lines go to ``emit`` (without terminator)."""
+        """Act on one received line; reply lines go to ``emit`` (without terminator) and ``replies``."""
         with self._lock:
             if not self._record(line):
                 return  # hung controller: no action, no reply
-            try:
-                body = self._check_numbering(line, emit)
-                if body is None:
-                    return
-                if self._halted:
-                    raise _Refused("halted", "halted by emergency stop, reset required")
-                self._dispatch(body, emit)
-            except _Refused as refusal:
-                emit(self._error_line(refusal))
+
+            def send(text: str) -> None:
+                self.replies.append(text)
+                emit(text)
+
+            self._handle(line, send)
+
+    def _handle(self, line: str, emit: Callable[[str], None]) -> None:
+        """One line, under the lock: numbering, halt state, dispatch; a refusal becomes an error line."""
+        try:
+            body = self._check_numbering(line, emit)
+            if body is None:
+                return
+            if self._halted:
+                raise _Refused("halted", "halted by emergency stop, reset required")
+            self._dispatch(body, emit)
+        except _Refused as refusal:
+            emit(self._error_line(refusal))
 
     # ------------------------------------------------------------------------- parsing
 
@@ -323,6 +341,8 @@ class SimStage(LineEngine):
             emit("[VER:simulated-stage 1.0]")
         elif d.report == "status" and text == "?":
             emit(self._status_line())
+            if not d.status_ok:
+                return  # a real-time query: the status line is the whole answer
         else:
             raise _Refused("unknown", f"unknown command {text!r}")
         emit("ok")

@@ -279,10 +279,10 @@ def _grid_needs(caps, index: int, step: GridStep) -> tuple[StageCaps, ProbeCaps]
         raise PlanError(f"{where(index, step)}: expected a probe of the bench file "
                         f"({known}), found '{step.probe}'")
     scan_z_m = caps.stage.board_origin_m[2] + step.height_m
-    if caps.stage.safe_z_m < scan_z_m:
+    if caps.stage.limits.safe_z_m < scan_z_m:
         raise SafetyLimitError(f"{where(index, step)}: expected safe_z above the scan height "
                                f"(stage z = {scan_z_m * 1e3:g} mm), found "
-                               f"{caps.stage.safe_z_m * 1e3:g} mm")
+                               f"{caps.stage.limits.safe_z_m * 1e3:g} mm")
     return caps.stage, probe
 
 
@@ -292,7 +292,7 @@ def _grid_warnings(state: PlanState, index: int, step: GridStep, probe: ProbeCap
         state.warnings.append(f"{where(index, step)}: H-loop scanned in one orientation "
                               f"({orientations[0]:g} deg); a loop only sees the field through "
                               f"it, so scan 0 and 90 deg (common practice)")
-    if len(orientations) > 1 and not stage.rotary_axis:
+    if len(orientations) > 1 and not stage.limits.rotary_axis:
         raise PlanError(f"{where(index, step)}: {len(orientations)} probe orientations, but the stage "
                         "has no rotary axis (bench [stage] rotary_axis = false): give the step one "
                         "orientation and run the other as a second sequence after turning the probe by hand")
@@ -313,8 +313,15 @@ def _grid_poses(step: GridStep, stage: StageCaps, probe: ProbeCaps,
 
 def _check_stage_limits(stage: StageCaps, index: int, step: GridStep,
                         poses: list[StagePose]) -> None:
+    limits = stage.limits
+    if limits.rotary_axis:
+        lo, hi = limits.a_deg
+        for angle in sorted({p.rotation_deg for p in poses}):
+            if angle < lo - _EPS or angle > hi + _EPS:
+                raise SafetyLimitError(f"{where(index, step)}: expected probe orientations within the "
+                                       f"stage's A limits [{lo:g} deg, {hi:g} deg], found {angle:g} deg")
     for number, pose in enumerate(poses, start=1):
-        for axis, value, (lo, hi) in zip("xyz", (pose.x_m, pose.y_m, pose.z_m), stage.limits_m):
+        for axis, value, (lo, hi) in zip("xyz", (pose.x_m, pose.y_m, pose.z_m), limits.as_dict().values()):
             if value < lo - _EPS or value > hi + _EPS:
                 raise SafetyLimitError(
                     f"{where(index, step)}: position {number} of {len(poses)} (board x = "
