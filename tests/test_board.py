@@ -130,3 +130,11 @@ def test_board_models_are_frozen():
     board = demo_board()
     with pytest.raises(Exception):
         board.site.distance_m = 10.0  # type: ignore[misc]
+
+
+def test_the_example_in_the_docs_is_a_valid_board():
+    docs = Path(__file__).parent.parent / "docs" / "board-format.md"
+    text = docs.read_text(encoding="utf-8")
+    example = text.split("```toml\n", 1)[1].split("```", 1)[0]
+    board = parse_board(example, "docs/board-format.md")
+    assert [e.kind for e in board.emitters] == ["clock", "cable"]
