@@ -69,6 +69,31 @@ def test_every_problem_is_kept_in_file_order():
     assert text.splitlines()[info.value.line - 1].startswith("rise_time")
 
 
+@pytest.mark.parametrize("old, new, expected", [
+    ('["30 MHz", "-9 dBi"]', '["0 MHz", "-9 dBi"]',
+     'site.antenna_gain[0][0]: expected a positive frequency, found "0 MHz"'),
+    ("ring_q = 4.0\n", "",
+     "emitters[1].ring_q: expected ring_q with ring_frequency (they go together), found no "
+     "ring_q key"),
+    ('length = "30 mm"', 'length = "30 mm"\nloop_area = "1 cm2"',
+     'emitters[2].loop_area: expected no loop_area with dipole = "electric" (it takes length), '
+     "found loop_area = 0.0001 m2"),
+    ('inductance = "32 nH"', 'inductance = "32 nH"\nwire_radius = "0.1 mm"',
+     "probes[2].wire_radius: expected inductance or wire_radius, found both"),
+    ('name = "mcu-clock"', 'name = ""',
+     'emitters[0].name: expected a string of at least 1 character, found ""'),
+    ('duty = 0.1\n', "duty = 1.5\n", "emitters[3].duty: expected a value <= 1.0, found 1.5"),
+    ('ground_plane = true', 'ground_plane = "yes"',
+     'site.ground_plane: expected true or false, found "yes"'),
+])
+def test_more_board_rules(old, new, expected):
+    text = _demo_text()
+    assert text.count(old) >= 1
+    with pytest.raises(ConfigError) as info:
+        parse_board(text.replace(old, new, 1), "demo.toml")
+    assert str(info.value).split(": ", 1)[1] == expected
+
+
 @pytest.mark.parametrize("name", ["demo-board.toml", "demo-board-fixed.toml"])
 def test_demo_boards_load(name):
     board = load_board(DEMO / name)

@@ -149,6 +149,9 @@ def _gain_row(rows: Any, index: int, previous_hz: float | None) -> tuple[float, 
         freq_hz = parse(row[0], "frequency")
     except ConfigError as exc:
         raise cross_check_error([((index, 0), exc.message)]) from None
+    if not freq_hz > 0.0:
+        raise cross_check_error([((index, 0), f"expected a positive frequency, found "
+                                              f"{format_value(row[0])}")])
     if previous_hz is not None and not freq_hz > previous_hz:
         raise cross_check_error([((index, 0), f"expected a frequency above the row before "
                                               f"({format_value(rows[index - 1][0])}), found "
