@@ -14,7 +14,7 @@ from pathlib import Path
 
 from bench.errors import ConfigError, PlanError
 
-__all__ = ["BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report",
+__all__ = ["BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report", "serve_simulator",
            "export", "compare", "identify", "info", "run_results", "analyzer_caution"]
 
 log = logging.getLogger("bench.app")
@@ -162,16 +162,29 @@ def _resume_simulator(manifest: dict, options: BenchOptions, sim: bool, accept_c
     return board, seed
 
 
-def report(folder: Path, views=None) -> Path:
-    """Write the HTML report and plots of a run folder; returns the HTML file."""
-    from bench.report import write_report
+def report(folder: Path, *, map_peaks: int = 3, map_freqs_hz: tuple = (), map_bands_hz: tuple = ()) -> Path:
+    """Write the HTML report and plots of a run folder; returns the HTML file.
+
+    Near-field maps are drawn at the ``map_peaks`` strongest hot spots, at each frequency of
+    ``map_freqs_hz`` and over each (low, high) band of ``map_bands_hz`` (Hz).
+    """
+    from bench.report import MapViews, write_report
     from bench.store import open_run
 
+    views = MapViews(peaks=map_peaks, freqs_hz=tuple(map_freqs_hz), bands_hz=tuple(map_bands_hz))
     run = open_run(folder)
     try:
         return write_report(run, views)
     finally:
         run.close()
+
+
+def serve_simulator(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False,
+                    announce=None) -> int:
+    """Serve the simulated bench until stopped; ``announce(addresses)`` once it listens."""
+    from bench.simbench import serve_forever
+
+    return serve_forever(port=port, board=board, seed=seed, realtime=realtime, announce=announce)
 
 
 def run_results(folder: Path):

@@ -29,7 +29,6 @@ __all__ = [
     "BOLTZMANN_J_PER_K",
     "KT0_DBM_PER_HZ",
     "wavelength_m",
-    "wavenumber_rad_per_m",
     "reactive_near_field_m",
     "fraunhofer_distance_m",
     "small_source_boundary_m",
@@ -74,11 +73,6 @@ KT0_DBM_PER_HZ = 10.0 * math.log10(BOLTZMANN_J_PER_K * 290.0 / 1e-3)
 def wavelength_m(freq_hz):
     """Free-space wavelength lambda = c / f, metres (freq_hz > 0)."""
     return _scalar_or_array(C0_M_PER_S / np.asarray(freq_hz, dtype=float))
-
-
-def wavenumber_rad_per_m(freq_hz):
-    """Free-space wavenumber k = 2*pi*f / c, rad/m."""
-    return 2.0 * np.pi * np.asarray(freq_hz, dtype=float) / C0_M_PER_S
 
 
 def reactive_near_field_m(d_m, freq_hz):

@@ -30,6 +30,7 @@ __all__ = [
     "KeyPath",
     "TomlSource",
     "read_toml",
+    "parse_toml",
     "format_key_path",
     "format_value",
     "suggest",
@@ -102,6 +103,24 @@ def read_toml(path: str | Path) -> TomlSource:
     except (OSError, UnicodeDecodeError) as exc:
         raise _with_all(ConfigError(f"expected a readable UTF-8 TOML file, found {_os_reason(exc)}",
                                     file=file)) from exc
+    return parse_toml(text, file)
+
+
+def parse_toml(text: str, file: str) -> TomlSource:
+    """Parse TOML text already in memory (a packaged resource, a test string).
+
+    Parameters
+    ----------
+    text : str
+        The TOML text.
+    file : str
+        Name used in messages, as the user would recognise it.
+
+    Raises
+    ------
+    ConfigError
+        ``FILE:LINE: expected valid TOML (column C), found a syntax error: ...``.
+    """
     if text.startswith("\ufeff"):
         raise _with_all(ConfigError("expected UTF-8 text without a byte-order mark, found one at the "
                                     "start of the file: save it as plain UTF-8", file=file, line=1))
@@ -369,7 +388,7 @@ def format_value(value: Any) -> str:
     if isinstance(value, (list, tuple)):
         if len(value) <= 4 and all(isinstance(v, (str, int, float)) for v in value):
             return "[" + ", ".join(format_value(v) for v in value) + "]"
-        return f"a list of {len(value)} items"
+        return f"a list of {len(value)} item{'s' if len(value) != 1 else ''}"
     return "a value of another type"
 
 
@@ -637,6 +656,11 @@ def _message(item: dict) -> str:
         return f"expected 1 to 64 lower-case letters, digits, '-' or '_', found {found}"
     if kind in ("too_short", "too_long"):
         return _length_message(kind, ctx, item.get("input"))
+    if kind in ("string_too_short", "string_too_long"):
+        bound = ctx.get("min_length") if kind == "string_too_short" else ctx.get("max_length")
+        most = "at least" if kind == "string_too_short" else "at most"
+        return f"expected a string of {most} {bound} character{'s' if bound != 1 else ''}, " \
+               f"found {found}"
     if kind in ("greater_than", "greater_than_equal", "less_than", "less_than_equal"):
         sign = {"greater_than": ">", "greater_than_equal": ">=", "less_than": "<",
                 "less_than_equal": "<="}[kind]
@@ -693,8 +717,10 @@ class _QuantityParser:
     def __call__(self, value: Any) -> float:
         from bench import units  # leaf module; imported here to keep this module light
 
+        word = units.dimension_word(self.dimension)
         if isinstance(value, (dict, list, tuple)):
-            raise bench_error(f"expected a {self.dimension} like "
+            article = "an" if word[:1] in "aeiou" else "a"
+            raise bench_error(f"expected {article} {word} like "
                               f"{units.DIMENSIONS[self.dimension]}, found {format_value(value)}")
         try:
             result = units.parse(value, self.dimension)
@@ -702,7 +728,7 @@ class _QuantityParser:
             raise bench_error(exc.message) from None
         if (self.positive and result <= 0) or (self.non_negative and result < 0):
             sign = "positive" if self.positive else "non-negative"
-            raise bench_error(f"expected a {sign} {self.dimension}, found {format_value(value)}")
+            raise bench_error(f"expected a {sign} {word}, found {format_value(value)}")
         return result
 
 

@@ -26,6 +26,7 @@ __all__ = [
     "MU0_H_PER_M",
     "EPS0_F_PER_M",
     "DIMENSIONS",
+    "dimension_word",
     "parse",
     "format_hz",
     "dbm_to_dbuv",
@@ -94,8 +95,24 @@ _NUMBER = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
 _QUANTITY = re.compile(rf"^\s*({_NUMBER})\s*([^\s\d].*?)?\s*$")
 
 
-def _a(word: str) -> str:
-    """English indefinite article: 'an angle', 'a frequency'."""
+#: How a dimension is named in messages, where its key is not an English word.
+_WORDS = {
+    "db": "level in dB",
+    "dbm": "power in dBm",
+    "dbuv": "voltage in dBuV",
+    "dbuv_per_m": "field strength in dBuV/m",
+    "dbua_per_m": "field strength in dBuA/m",
+}
+
+
+def dimension_word(dimension: str) -> str:
+    """The words for a key of :data:`DIMENSIONS` in messages: ``"db"`` -> ``"level in dB"``."""
+    return _WORDS.get(dimension, dimension.replace("_", " "))
+
+
+def _a(dimension: str) -> str:
+    """The dimension's words with an English indefinite article: 'an angle', 'a frequency'."""
+    word = dimension_word(dimension)
     return f"an {word}" if word[:1] in "aeiou" else f"a {word}"
 
 
@@ -146,7 +163,7 @@ def parse(value: object, dimension: str) -> float:
         )
     result = float(number) * factor
     if not math.isfinite(result):
-        raise UnitError(f"expected a finite {dimension}, found {value!r}")
+        raise UnitError(f"expected a finite {dimension_word(dimension)}, found {value!r}")
     return result
 
 

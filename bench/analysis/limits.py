@@ -61,7 +61,6 @@ from bench.tomlsource import (
 
 __all__ = [
     "DETECTORS",
-    "QUANTITIES",
     "LimitLine",
     "LimitSegment",
     "LimitSet",
@@ -72,7 +71,6 @@ __all__ = [
 ]
 
 DETECTORS = ("quasi-peak", "peak", "average")
-QUANTITIES = ("dbuv_per_m", "dbuv", "dbua_per_m")
 _FIELD_QUANTITIES = ("dbuv_per_m", "dbua_per_m")
 # Linear spellings accepted for a level, per quantity: unit -> factor to the dB reference unit.
 _LINEAR_UNITS = {

@@ -103,10 +103,8 @@ def _announce(addresses: dict) -> None:
 
 
 def cmd_sim(args) -> int:
-    from bench.simbench import serve_forever
-
-    return serve_forever(port=args.port, board=args.board, seed=args.seed, realtime=args.realtime,
-                         announce=_announce)
+    return app.serve_simulator(port=args.port, board=args.board, seed=args.seed, realtime=args.realtime,
+                               announce=_announce)
 
 
 def cmd_export(args) -> int:
@@ -117,7 +115,6 @@ def cmd_export(args) -> int:
 
 def cmd_report(args) -> int:
     from bench import units
-    from bench.report import MapViews
 
     def freq(text: str, option: str) -> float:
         try:
@@ -130,9 +127,8 @@ def cmd_report(args) -> int:
     bands = tuple((freq(lo, "--map-band"), freq(hi, "--map-band")) for lo, hi in args.map_band)
     if any(lo >= hi for lo, hi in bands):
         raise ConfigError("expected LOW < HIGH", key="--map-band")
-    views = MapViews(peaks=args.map_peaks, freqs_hz=tuple(freq(f, "--map-at") for f in args.map_at),
-                     bands_hz=bands)
-    print(app.report(args.run, views))
+    print(app.report(args.run, map_peaks=args.map_peaks,
+                     map_freqs_hz=tuple(freq(f, "--map-at") for f in args.map_at), map_bands_hz=bands))
     return 0
 
 

@@ -1,10 +1,12 @@
 """The simulated board file: emitters, ambient carriers and the physical truth of the bench.
 
-A board file is TOML (``schema = 1``), parsed once with :mod:`tomllib` and validated into frozen
-pydantic models; unknown keys are refused. Quantities are strings with units (``"25 MHz"``,
-``"1.2 cm2"``, ``"3.3 V"``); plain numbers are used only for dimensionless values (duty cycle,
-quality factor, turns, direction vectors, tolerance in ppm). Every error is a one-line
-:class:`~bench.errors.ConfigError` naming the file, the line and the key path.
+A board file is TOML (``schema = 1``) read through :mod:`bench.tomlsource` and validated into
+frozen pydantic models; unknown keys are refused with a "did you mean" hint. Quantities are
+strings with units (``"25 MHz"``, ``"1.2 cm2"``, ``"3.3 V"``); plain numbers are used only for
+dimensionless values (duty cycle, quality factor, turns, direction vectors, tolerance in ppm).
+Every error is one line ``FILE:LINE: key.path: expected ..., found ...``
+(:class:`~bench.errors.ConfigError`, exit code 2). The format is described for users in
+``docs/board-format.md``.
 
 Layout of a board file::
 
@@ -31,18 +33,28 @@ an attached cable, driven by a named clock or switcher (see :mod:`bench.sim.worl
 from __future__ import annotations
 
 import math
-import re
-import tomllib
 from importlib import resources
 from pathlib import Path
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Literal, Optional, Union
 
 import numpy as np
-from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationError,
-                      field_validator, model_validator)
-from pydantic_core import PydanticCustomError
+import pydantic
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictFloat, StrictInt, StrictStr
 
-from bench.errors import ConfigError, UnitError
+from bench.errors import ConfigError
+from bench.tomlsource import (
+    TomlSource,
+    bench_error,
+    check_schema,
+    cross_check_error,
+    format_value,
+    parse_toml,
+    quantity,
+    quantity_list,
+    read_toml,
+    suggest,
+    validation_to_config_error,
+)
 from bench.units import parse
 
 __all__ = [
@@ -66,84 +78,119 @@ __all__ = [
     "parse_board",
 ]
 
-SCHEMA_VERSION = 1
 DEMO_BOARD_FILE = "demo-board.toml"
 
-
 # ---------------------------------------------------------------------------------------------
-# Quantity fields: text with units -> SI float, errors reported with their key path
+# Field types: quantity strings -> SI floats (bench.tomlsource), plain numbers where unitless
 # ---------------------------------------------------------------------------------------------
 
-def _quantity(dimension: str):
-    def convert(value: Any) -> float:
-        try:
-            return parse(value, dimension)
-        except UnitError as exc:
-            raise PydanticCustomError("unit", "{msg}", {"msg": exc.message}) from None
-    return BeforeValidator(convert)
+Name = Annotated[StrictStr, Field(min_length=1)]
+PositiveHz = quantity("frequency", positive=True)
+PositiveMetre = quantity("length", positive=True)
+NonNegativeMetre = quantity("length", non_negative=True)
+PositiveSecond = quantity("time", positive=True)
+PositiveVolt = quantity("voltage", positive=True)
+PositiveAmpere = quantity("current", positive=True)
+PositiveOhm = quantity("resistance", positive=True)
+PositiveHenry = quantity("inductance", positive=True)
+PositiveFarad = quantity("capacitance", positive=True)
+PositiveSquareMetre = quantity("area", positive=True)
+Decibel = quantity("db")
+NonNegativeDecibel = quantity("db", non_negative=True)
+DbuvPerM = quantity("dbuv_per_m")
+LengthPair = quantity_list("length", 2)
+LengthTriple = quantity_list("length", 3)
+Fraction = Annotated[StrictFloat, Field(gt=0.0, lt=1.0)]
+PositiveNumber = Annotated[StrictFloat, Field(gt=0.0)]
 
 
-def _gain_db(value: Any) -> float:
-    """A gain relative to an isotropic radiator: "5 dBi" (or "5 dB")."""
+def _number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def _direction(value: Any) -> tuple[float, float, float]:
+    """``[x, y, z]`` (plain numbers, not all zero) -> unit vector."""
+    if not (isinstance(value, (list, tuple)) and len(value) == 3 and all(map(_number, value))):
+        raise bench_error(f"expected a direction [x, y, z] of three plain numbers like "
+                          f"[0, 0, 1], found {format_value(value)}")
+    floats = [float(c) for c in value]
+    norm = math.sqrt(sum(c * c for c in floats))
+    if not norm > 0.0 or not math.isfinite(norm):
+        raise bench_error(f"expected a non-zero finite direction [x, y, z], found "
+                          f"{format_value(value)}")
+    return tuple(c / norm for c in floats)
+
+
+def _parse_gain(value: Any) -> float:
+    """A gain relative to an isotropic radiator, ``"5 dBi"`` (or ``"5 dB"``) -> dBi.
+
+    Raises
+    ------
+    ConfigError
+        The text is not a gain.
+    """
     text = value.strip() if isinstance(value, str) else value
     if isinstance(text, str) and text.lower().endswith("dbi"):
         text = text[:-1]
     try:
         return parse(text, "db")
-    except UnitError:
-        raise PydanticCustomError("unit", "{msg}", {
-            "msg": f'expected a gain like "5 dBi" (units: dBi, dB), found {value!r}'}) from None
+    except ConfigError:
+        raise ConfigError(f'expected a gain like "5 dBi" (units: dBi, dB), found '
+                          f"{format_value(value)}") from None
 
 
-def _gain_spec(value: Any):
-    """One gain ("2 dBi") or a table of (frequency, gain) rows, rows checked one by one."""
-    if not isinstance(value, (tuple, list)):
-        return _gain_db(value)
-    rows = []
-    for index, row in enumerate(value):
-        if not isinstance(row, (tuple, list)) or len(row) != 2:
-            raise PydanticCustomError("value_error", "row {i}: expected [frequency, gain] like "
-                                      '["100 MHz", "1.5 dBi"], found {row}', {"i": index, "row": repr(row)})
+def _gain_row(rows: Any, index: int, previous_hz: float | None) -> tuple[float, float]:
+    """Row ``index`` of a gain table as (frequency in Hz, gain in dBi), checked alone."""
+    row = rows[index]
+    if not (isinstance(row, (list, tuple)) and len(row) == 2):
+        raise cross_check_error([((index,), 'expected a row [frequency, gain] like '
+                                            f'["100 MHz", "1.5 dBi"], found {format_value(row)}')])
+    try:
+        freq_hz = parse(row[0], "frequency")
+    except ConfigError as exc:
+        raise cross_check_error([((index, 0), exc.message)]) from None
+    if not freq_hz > 0.0:
+        raise cross_check_error([((index, 0), f"expected a positive frequency, found "
+                                              f"{format_value(row[0])}")])
+    if previous_hz is not None and not freq_hz > previous_hz:
+        raise cross_check_error([((index, 0), f"expected a frequency above the row before "
+                                              f"({format_value(rows[index - 1][0])}), found "
+                                              f"{format_value(row[0])}")])
+    try:
+        return freq_hz, _parse_gain(row[1])
+    except ConfigError as exc:
+        raise cross_check_error([((index, 1), exc.message)]) from None
+
+
+def _gain_spec(value: Any) -> Union[float, tuple[tuple[float, float], ...]]:
+    """One gain (``"2 dBi"``) or a table of at least two (frequency, gain) rows."""
+    if not isinstance(value, (list, tuple)):
         try:
-            rows.append((parse(row[0], "frequency"), _gain_db(row[1])))
-        except UnitError as exc:
-            raise PydanticCustomError("unit", "row {i}: {msg}", {"i": index, "msg": exc.message}) from None
-        except PydanticCustomError as exc:
-            raise PydanticCustomError("unit", "row {i}: {msg}", {"i": index, "msg": exc.context["msg"]}) from None
+            return _parse_gain(value)
+        except ConfigError as exc:
+            raise bench_error(exc.message) from None
+    if len(value) < 2:
+        raise bench_error(f'expected one gain like "2 dBi" or a table of at least 2 rows '
+                          f"[frequency, gain], found {format_value(value)}")
+    rows: list[tuple[float, float]] = []
+    for index in range(len(value)):
+        rows.append(_gain_row(value, index, rows[-1][0] if rows else None))
     return tuple(rows)
 
 
-Hz = Annotated[float, _quantity("frequency")]
-Metre = Annotated[float, _quantity("length")]
-Second = Annotated[float, _quantity("time")]
-Volt = Annotated[float, _quantity("voltage")]
-Ampere = Annotated[float, _quantity("current")]
-Ohm = Annotated[float, _quantity("resistance")]
-Henry = Annotated[float, _quantity("inductance")]
-Farad = Annotated[float, _quantity("capacitance")]
-SquareMetre = Annotated[float, _quantity("area")]
-Decibel = Annotated[float, _quantity("db")]
-DbuvPerM = Annotated[float, _quantity("dbuv_per_m")]
-GainDbi = Annotated[float, BeforeValidator(_gain_db)]
-GainSpec = Annotated[Union[float, tuple[tuple[float, float], ...]], BeforeValidator(_gain_spec)]
-Direction = tuple[float, float, float]
+Direction = Annotated[tuple[float, float, float], pydantic.BeforeValidator(_direction)]
+GainSpec = Annotated[Union[float, tuple[tuple[float, float], ...]],
+                     pydantic.BeforeValidator(_gain_spec)]
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True)
+    model_config = ConfigDict(frozen=True, extra="forbid")
 
 
-def _positive(name: str, value: float) -> float:
-    if not value > 0.0:
-        raise ValueError(f"{name} must be positive, found {value!r}")
-    return value
-
-
-def _unit_vector(value: Direction) -> Direction:
-    norm = math.sqrt(sum(c * c for c in value))
-    if not norm > 0.0 or not math.isfinite(norm):
-        raise ValueError(f"expected a non-zero direction [x, y, z], found {list(value)!r}")
-    return tuple(c / norm for c in value)
+def _refuse(problems: list) -> None:
+    """Raise the (relative key path, message) problems of a cross-check, if any."""
+    if problems:
+        raise cross_check_error(problems)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -151,7 +198,7 @@ def _unit_vector(value: Direction) -> Direction:
 # ---------------------------------------------------------------------------------------------
 
 class BoardOutline(_Model):
-    """Board outline and stack-up.
+    """``[board]``: outline and stack-up.
 
     Attributes
     ----------
@@ -161,17 +208,8 @@ class BoardOutline(_Model):
         Board thickness, metres (for drawings; the emitters carry their own depth).
     """
 
-    outline_m: tuple[tuple[Metre, Metre], ...] = Field(alias="outline")
-    thickness_m: Metre = Field(default=1.6e-3, alias="thickness")
-
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @field_validator("outline_m")
-    @classmethod
-    def _polygon(cls, value):
-        if len(value) < 3:
-            raise ValueError(f"outline needs at least 3 corners, found {len(value)}")
-        return value
+    outline_m: Annotated[tuple[LengthPair, ...], Field(min_length=3)] = Field(alias="outline")
+    thickness_m: PositiveMetre = Field(default=1.6e-3, alias="thickness")
 
     @property
     def centre_m(self) -> tuple[float, float]:
@@ -186,42 +224,36 @@ class BoardOutline(_Model):
 # ---------------------------------------------------------------------------------------------
 
 class _Placed(_Model):
-    name: str = Field(min_length=1)
-    position_m: tuple[Metre, Metre] = Field(alias="position")
-    depth_m: Metre = Field(default=0.0, alias="depth")
-    tolerance_ppm: float = Field(default=0.0, ge=0.0, le=1e4)
+    """Name, position (x, y) on the board in m, depth below the top surface in m."""
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @field_validator("depth_m")
-    @classmethod
-    def _depth(cls, value):
-        if value < 0.0:
-            raise ValueError(f"depth is measured below the top surface and must be >= 0, found {value!r} m")
-        return value
+    name: Name
+    position_m: LengthPair = Field(alias="position")
+    depth_m: NonNegativeMetre = Field(default=0.0, alias="depth")
+    tolerance_ppm: Annotated[StrictFloat, Field(ge=0.0, le=1e4)] = 0.0
 
 
 class _Dipole(_Placed):
+    """A small dipole: magnetic (``loop_area`` in m^2) or electric (``length`` in m)."""
+
     dipole: Literal["magnetic", "electric"]
     axis: Direction
-    loop_area_m2: SquareMetre | None = Field(default=None, alias="loop_area")
-    length_m: Metre | None = Field(default=None, alias="length")
+    loop_area_m2: Optional[PositiveSquareMetre] = Field(default=None, alias="loop_area")
+    length_m: Optional[PositiveMetre] = Field(default=None, alias="length")
 
-    @field_validator("axis")
-    @classmethod
-    def _axis(cls, value):
-        return _unit_vector(value)
-
-    @model_validator(mode="after")
-    def _coupling(self):
-        if self.dipole == "magnetic":
-            if self.loop_area_m2 is None or self.length_m is not None:
-                raise ValueError("a magnetic emitter takes loop_area (and no length)")
-            _positive("loop_area", self.loop_area_m2)
-        else:
-            if self.length_m is None or self.loop_area_m2 is not None:
-                raise ValueError("an electric emitter takes length (and no loop_area)")
-            _positive("length", self.length_m)
+    @pydantic.model_validator(mode="after")
+    def _coupling(self) -> "_Dipole":
+        wanted, other = ("loop_area", "length") if self.dipole == "magnetic" else (
+            "length", "loop_area")
+        values = {"loop_area": self.loop_area_m2, "length": self.length_m}
+        problems = []
+        if values[wanted] is None:
+            problems.append(((wanted,), f"expected {wanted} with dipole = \"{self.dipole}\", "
+                                        f"found no {wanted} key"))
+        if values[other] is not None:
+            problems.append(((other,), f"expected no {other} with dipole = \"{self.dipole}\" "
+                                       f"(it takes {wanted}), found {other} = {values[other]:g} "
+                                       f"{'m2' if other == 'loop_area' else 'm'}"))
+        _refuse(problems)
         return self
 
     @property
@@ -231,21 +263,21 @@ class _Dipole(_Placed):
 
 
 class _Trapezoid(_Dipole):
-    frequency_hz: Hz = Field(alias="frequency")
-    amplitude_v: Volt = Field(alias="amplitude")
-    duty: float = Field(gt=0.0, lt=1.0)
-    rise_time_s: Second = Field(alias="rise_time")
-    impedance_ohm: Ohm = Field(alias="impedance")
+    """A trapezoidal waveform: frequency in Hz, amplitude in V, rise time in s, impedance in ohm."""
 
-    @model_validator(mode="after")
-    def _positive_values(self):
-        for key in ("frequency_hz", "amplitude_v", "rise_time_s", "impedance_ohm"):
-            _positive(key.rsplit("_", 1)[0], getattr(self, key))
-        period_s = 1.0 / self.frequency_hz
-        if self.rise_time_s >= min(self.duty, 1.0 - self.duty) * period_s:
-            raise ValueError(
-                f"rise_time {self.rise_time_s:g} s must be shorter than the pulse and the gap "
-                f"({min(self.duty, 1.0 - self.duty) * period_s:g} s)")
+    frequency_hz: PositiveHz = Field(alias="frequency")
+    amplitude_v: PositiveVolt = Field(alias="amplitude")
+    duty: Fraction
+    rise_time_s: PositiveSecond = Field(alias="rise_time")
+    impedance_ohm: PositiveOhm = Field(alias="impedance")
+
+    @pydantic.model_validator(mode="after")
+    def _edges_fit(self) -> "_Trapezoid":
+        shortest_s = min(self.duty, 1.0 - self.duty) / self.frequency_hz
+        if self.rise_time_s >= shortest_s:
+            _refuse([(("rise_time",), f"expected a rise time shorter than the pulse and the gap "
+                                      f"({shortest_s * 1e9:g} ns at duty {self.duty:g}), found "
+                                      f"{self.rise_time_s * 1e9:g} ns")])
         return self
 
 
@@ -258,41 +290,46 @@ class ClockEmitter(_Trapezoid):
 class SwitcherEmitter(_Trapezoid):
     """A switching converter's switch node; optional ringing of the parasitic LC.
 
-    ``ring_frequency`` and ``ring_q`` multiply the harmonics by a second-order resonance
+    ``ring_frequency`` (Hz) and ``ring_q`` multiply the harmonics by a second-order resonance
     (gain ``ring_q`` at ``ring_frequency``), the switch-node ringing that lifts harmonics in the
     hundreds of MHz.
     """
 
     kind: Literal["switcher"]
-    ring_frequency_hz: Hz | None = Field(default=None, alias="ring_frequency")
-    ring_q: float | None = Field(default=None, gt=0.0)
+    ring_frequency_hz: Optional[PositiveHz] = Field(default=None, alias="ring_frequency")
+    ring_q: Optional[PositiveNumber] = None
 
-    @model_validator(mode="after")
-    def _ring(self):
-        if (self.ring_frequency_hz is None) != (self.ring_q is None):
-            raise ValueError("ring_frequency and ring_q go together")
+    @pydantic.model_validator(mode="after")
+    def _ring(self) -> "SwitcherEmitter":
+        if self.ring_frequency_hz is None and self.ring_q is not None:
+            _refuse([(("ring_frequency",), "expected ring_frequency with ring_q (they go "
+                                           "together), found no ring_frequency key")])
+        if self.ring_frequency_hz is not None and self.ring_q is None:
+            _refuse([(("ring_q",), "expected ring_q with ring_frequency (they go together), "
+                                   "found no ring_q key")])
         return self
 
 
 class SpurEmitter(_Dipole):
-    """A single CW line (e.g. a PLL spur) of peak current ``current``."""
+    """A single CW line (e.g. a PLL spur): ``frequency`` in Hz, peak ``current`` in A."""
 
     kind: Literal["spur"]
-    frequency_hz: Hz = Field(alias="frequency")
-    current_a: Ampere = Field(alias="current")
+    frequency_hz: PositiveHz = Field(alias="frequency")
+    current_a: PositiveAmpere = Field(alias="current")
 
 
 class BurstEmitter(_Dipole):
-    """A burst-modulated carrier (a radio sending packets): peak current while on.
+    """A burst-modulated carrier (a radio sending packets): peak current in A while on.
 
-    ``repetition`` is the burst repetition frequency, ``duty`` the on fraction of each period.
+    ``repetition`` is the burst repetition frequency (Hz), ``duty`` the on fraction of each
+    period.
     """
 
     kind: Literal["burst"]
-    frequency_hz: Hz = Field(alias="frequency")
-    current_a: Ampere = Field(alias="current")
-    repetition_hz: Hz = Field(alias="repetition")
-    duty: float = Field(gt=0.0, le=1.0)
+    frequency_hz: PositiveHz = Field(alias="frequency")
+    current_a: PositiveAmpere = Field(alias="current")
+    repetition_hz: PositiveHz = Field(alias="repetition")
+    duty: Annotated[StrictFloat, Field(gt=0.0, le=1.0)]
 
 
 class CableEmitter(_Placed):
@@ -301,27 +338,17 @@ class CableEmitter(_Placed):
     The common-mode voltage is ``coupling`` (dB, usually negative) times the harmonic voltage
     of the emitter ``driven_by``; the cable's common-mode impedance is a series resonance at the
     quarter-wave frequency c/(4*length) with quality factor ``resonance_q`` and radiation
-    resistance ``resistance``. ``axis`` is the direction in which the cable leaves the board.
+    resistance ``resistance`` (ohm). ``axis`` is the direction in which the cable leaves the
+    board; ``length`` is in m.
     """
 
     kind: Literal["cable"]
     axis: Direction
-    length_m: Metre = Field(alias="length")
-    driven_by: str = Field(min_length=1)
+    length_m: PositiveMetre = Field(alias="length")
+    driven_by: Name
     coupling_db: Decibel = Field(alias="coupling")
-    resonance_q: float = Field(default=3.0, gt=0.0)
-    resistance_ohm: Ohm = Field(default=36.5, alias="resistance")
-
-    @field_validator("axis")
-    @classmethod
-    def _axis(cls, value):
-        return _unit_vector(value)
-
-    @model_validator(mode="after")
-    def _positive_values(self):
-        _positive("length", self.length_m)
-        _positive("resistance", self.resistance_ohm)
-        return self
+    resonance_q: PositiveNumber = 3.0
+    resistance_ohm: PositiveOhm = Field(default=36.5, alias="resistance")
 
 
 Emitter = Annotated[
@@ -335,98 +362,76 @@ Emitter = Annotated[
 # ---------------------------------------------------------------------------------------------
 
 class Ambient(_Model):
-    """A carrier present with the board off, as field strength at the receive antenna.
+    """A carrier present with the board off: frequency in Hz, field at the antenna in dBuV/m.
 
     ``polarization = "both"`` means the carrier is seen equally in both polarizations;
     otherwise the other polarization sees it reduced by the site's cross-polar rejection.
     """
 
-    name: str = Field(min_length=1)
-    frequency_hz: Hz = Field(alias="frequency")
+    name: Name
+    frequency_hz: PositiveHz = Field(alias="frequency")
     field_dbuv_per_m: DbuvPerM = Field(alias="field")
     polarization: Literal["horizontal", "vertical", "both"] = "both"
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
 
 class HLoopProbe(_Model):
-    """A shielded H-field loop probe.
+    """A shielded H-field loop probe: loop ``radius`` in m, ``turns``, inductance in H.
 
     ``axis = "horizontal"``: the loop stands upright and its axis turns with the stage's A axis
     (0 deg along +x); the tip is the bottom of the loop. ``axis = "vertical"``: the loop lies
-    flat, axis along z, the tip is the loop centre. Give ``inductance`` or ``wire_radius``
-    (then L = mu0*a*(ln(8a/b) - 2)*N^2).
+    flat, axis along z, the tip is the loop centre. Give ``inductance`` or ``wire_radius`` (m;
+    then L = mu0*a*(ln(8a/b) - 2)*N^2), or neither (an ideal loop into 50 ohm).
     """
 
-    tool: int = Field(ge=1)
+    tool: Annotated[StrictInt, Field(ge=1)]
     kind: Literal["h_loop"]
-    radius_m: Metre = Field(alias="radius")
-    turns: int = Field(default=1, ge=1)
+    radius_m: PositiveMetre = Field(alias="radius")
+    turns: Annotated[StrictInt, Field(ge=1)] = 1
     axis: Literal["horizontal", "vertical"] = "horizontal"
-    inductance_h: Henry | None = Field(default=None, alias="inductance")
-    wire_radius_m: Metre | None = Field(default=None, alias="wire_radius")
+    inductance_h: Optional[PositiveHenry] = Field(default=None, alias="inductance")
+    wire_radius_m: Optional[PositiveMetre] = Field(default=None, alias="wire_radius")
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @model_validator(mode="after")
-    def _geometry(self):
-        _positive("radius", self.radius_m)
-        if self.wire_radius_m is not None and not 0.0 < self.wire_radius_m < self.radius_m / 4.0:
-            raise ValueError("wire_radius must be positive and well below radius/4 for the loop formula")
+    @pydantic.model_validator(mode="after")
+    def _geometry(self) -> "HLoopProbe":
         if self.inductance_h is not None and self.wire_radius_m is not None:
-            raise ValueError("give inductance or wire_radius, not both")
+            _refuse([(("wire_radius",), "expected inductance or wire_radius, found both")])
+        if self.wire_radius_m is not None and not self.wire_radius_m < self.radius_m / 4.0:
+            _refuse([(("wire_radius",), f"expected a wire radius below radius/4 "
+                                        f"({self.radius_m / 4.0 * 1e3:g} mm) for the loop "
+                                        f"inductance formula, found {self.wire_radius_m * 1e3:g} mm")])
         return self
 
 
 class EProbe(_Model):
-    """A short E-field stub probe: effective height and source capacitance, reads E_z."""
+    """A short E-field stub probe reading E_z: effective height in m, capacitance in F."""
 
-    tool: int = Field(ge=1)
+    tool: Annotated[StrictInt, Field(ge=1)]
     kind: Literal["e_stub"]
-    effective_height_m: Metre = Field(alias="effective_height")
-    capacitance_f: Farad | None = Field(default=None, alias="capacitance")
-
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @model_validator(mode="after")
-    def _positive_values(self):
-        _positive("effective_height", self.effective_height_m)
-        return self
+    effective_height_m: PositiveMetre = Field(alias="effective_height")
+    capacitance_f: Optional[PositiveFarad] = Field(default=None, alias="capacitance")
 
 
 Probe = Annotated[Union[HLoopProbe, EProbe], Field(discriminator="kind")]
 
 
 class Site(_Model):
-    """Far-field site and receive chain.
+    """``[site]``: far-field site (distances in m) and receive chain (dB).
 
     ``antenna_gain`` is one gain (``"2 dBi"``) or a table ``[["30 MHz", "-9 dBi"], ...]`` with
-    strictly increasing frequencies; between points the gain is interpolated in dB against
-    log10(f), outside the table it is held at the end values.
+    strictly increasing frequencies, stored as (Hz, dBi) rows; between points the gain is
+    interpolated in dB against log10(f), outside the table it is held at the end values.
     """
 
-    distance_m: Metre = Field(alias="distance")
-    table_height_m: Metre = Field(default=0.8, alias="table_height")
-    ground_plane: bool = True
+    distance_m: PositiveMetre = Field(alias="distance")
+    table_height_m: PositiveMetre = Field(default=0.8, alias="table_height")
+    ground_plane: StrictBool = True
     antenna_gain: GainSpec
     cable_loss_db: Decibel = Field(default=0.0, alias="cable_loss")
     preamp_gain_db: Decibel = Field(default=0.0, alias="preamp_gain")
     cross_polar_rejection_db: Decibel = Field(default=20.0, alias="cross_polar_rejection")
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @model_validator(mode="after")
-    def _checks(self):
-        _positive("distance", self.distance_m)
-        _positive("table_height", self.table_height_m)
-        if isinstance(self.antenna_gain, tuple):
-            freqs = [f for f, _ in self.antenna_gain]
-            if len(freqs) < 2 or any(b <= a for a, b in zip(freqs, freqs[1:])):
-                raise ValueError("antenna_gain table needs >= 2 rows with strictly increasing frequency")
-        return self
-
     def antenna_gain_dbi(self, freq_hz) -> np.ndarray:
-        """Receive-antenna gain at ``freq_hz`` (array), dBi."""
+        """Receive-antenna gain, dBi, at ``freq_hz`` (array, Hz)."""
         f = np.asarray(freq_hz, dtype=float)
         if not isinstance(self.antenna_gain, tuple):
             return np.full(f.shape, float(self.antenna_gain))
@@ -435,27 +440,27 @@ class Site(_Model):
 
 
 class Stage(_Model):
-    """Placement of the board on the probe stage: stage coordinates of the board origin, m."""
+    """``[stage]``: stage coordinates of the board origin, m."""
 
-    board_origin_m: tuple[Metre, Metre, Metre] = Field(alias="board_origin")
-
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
+    board_origin_m: LengthTriple = Field(alias="board_origin")
 
 
 class Receiver(_Model):
-    """The analyzer's own noise figure, dB (sets the displayed noise level, sheet §8)."""
+    """``[receiver]``: the analyzer's own noise figure, dB (sets the displayed noise level)."""
 
-    noise_figure_db: Decibel = Field(alias="noise_figure")
+    noise_figure_db: NonNegativeDecibel = Field(alias="noise_figure")
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
 
+# ---------------------------------------------------------------------------------------------
+# The whole file
+# ---------------------------------------------------------------------------------------------
 
 class Board(_Model):
-    """A whole board file, validated."""
+    """A whole board file, validated (see the module docstring for the layout)."""
 
     schema_version: Literal[1] = Field(alias="schema")
-    name: str = Field(min_length=1)
-    description: str = ""
+    name: Name
+    description: StrictStr = ""
     board: BoardOutline
     emitters: tuple[Emitter, ...] = ()
     ambient: tuple[Ambient, ...] = ()
@@ -464,30 +469,16 @@ class Board(_Model):
     stage: Stage
     receiver: Receiver
 
-    model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
-
-    @model_validator(mode="after")
-    def _cross_checks(self):
-        names = [e.name for e in self.emitters] + [a.name for a in self.ambient]
-        dup = sorted({n for n in names if names.count(n) > 1})
-        if dup:
-            raise ValueError(f"emitter and ambient names must be unique, repeated: {', '.join(dup)}")
-        tools = [p.tool for p in self.probes]
-        dup_tools = sorted({t for t in tools if tools.count(t) > 1})
-        if dup_tools:
-            raise ValueError(f"probe tool numbers must be unique, repeated: {dup_tools}")
-        drivers = {e.name: e.kind for e in self.emitters}
-        for e in self.emitters:
-            if e.kind == "cable" and drivers.get(e.driven_by) not in ("clock", "switcher"):
-                raise ValueError(f"cable {e.name!r}: driven_by must name a clock or switcher emitter, "
-                                 f"found {e.driven_by!r}")
+    @pydantic.model_validator(mode="after")
+    def _cross_checks(self) -> "Board":
+        _refuse(_name_problems(self) + _tool_problems(self) + _driver_problems(self))
         return self
 
-    def probe(self, tool: int):
+    def probe(self, tool: int) -> Optional[Probe]:
         """The probe mounted as ``tool``, or None when the board file does not define it."""
         return next((p for p in self.probes if p.tool == tool), None)
 
-    def emitter(self, name: str):
+    def emitter(self, name: str) -> Emitter:
         """The emitter called ``name``; KeyError when there is none."""
         for e in self.emitters:
             if e.name == name:
@@ -495,8 +486,47 @@ class Board(_Model):
         raise KeyError(name)
 
 
+def _name_problems(board: Board) -> list:
+    """Emitter and ambient names share one name space (lines are tagged by name)."""
+    seen: dict[str, str] = {}
+    problems = []
+    named = [("emitters", i, e.name) for i, e in enumerate(board.emitters)]
+    named += [("ambient", i, a.name) for i, a in enumerate(board.ambient)]
+    for table, index, name in named:
+        if name in seen:
+            problems.append(((table, index, "name"), f"expected a name not used by another "
+                                                     f"emitter or ambient carrier, found "
+                                                     f"{format_value(name)} (also {seen[name]})"))
+        seen.setdefault(name, f"{table}[{index}]")
+    return problems
+
+
+def _tool_problems(board: Board) -> list:
+    seen: dict[int, int] = {}
+    problems = []
+    for index, probe in enumerate(board.probes):
+        if probe.tool in seen:
+            problems.append((("probes", index, "tool"), f"expected a tool number not used by "
+                                                        f"another probe, found {probe.tool} "
+                                                        f"(also probes[{seen[probe.tool]}])"))
+        seen.setdefault(probe.tool, index)
+    return problems
+
+
+def _driver_problems(board: Board) -> list:
+    drivers = [e.name for e in board.emitters if e.kind in ("clock", "switcher")]
+    problems = []
+    for index, e in enumerate(board.emitters):
+        if e.kind == "cable" and e.driven_by not in drivers:
+            problems.append((("emitters", index, "driven_by"),
+                             f"expected the name of a clock or switcher emitter "
+                             f"({', '.join(drivers) or 'none in this file'}), found "
+                             f"{format_value(e.driven_by)}{suggest(e.driven_by, drivers)}"))
+    return problems
+
+
 # ---------------------------------------------------------------------------------------------
-# Loading and error reporting
+# Loading
 # ---------------------------------------------------------------------------------------------
 
 def parse_board(text: str, origin: str = "<board>") -> Board:
@@ -512,37 +542,15 @@ def parse_board(text: str, origin: str = "<board>") -> Board:
     Raises
     ------
     ConfigError
-        One line with file, line, key path, what was expected and found (UnitError for a
-        quantity that cannot be read).
+        One line ``FILE:LINE: key.path: expected ..., found ...`` for the first problem in file
+        order; ``.all_errors`` holds every problem found.
     """
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        found = re.search(r"line (\d+)", str(exc))
-        raise ConfigError(f"TOML syntax error: {exc}", file=origin,
-                          line=int(found.group(1)) if found else None) from exc
-    if "schema" not in data:
-        raise ConfigError(f"missing key 'schema' (expected schema = {SCHEMA_VERSION})", file=origin)
-    if data["schema"] != SCHEMA_VERSION:
-        raise ConfigError(f"unsupported board schema {data['schema']!r} (this version reads {SCHEMA_VERSION})",
-                          file=origin, line=_find_line(text, ("schema",)), key="schema")
-    try:
-        return Board.model_validate(_tuples(data))
-    except ValidationError as exc:
-        raise _config_error(exc, text, origin) from None
+    return _validate(parse_toml(text, origin))
 
 
-def load_board(path) -> Board:
-    """Read a board file from ``path`` (str or Path); see :func:`parse_board`."""
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(f"cannot read board file: {exc.strerror or exc}", file=str(path)) from exc
-    except UnicodeDecodeError as exc:
-        raise ConfigError(f"expected a UTF-8 TOML board file, found bytes that are not UTF-8 at byte {exc.start}",
-                          file=str(path)) from None
-    return parse_board(text, origin=str(path))
+def load_board(path: str | Path) -> Board:
+    """Read and validate a board file (UTF-8); see :func:`parse_board`."""
+    return _validate(read_toml(path))
 
 
 def demo_board() -> Board:
@@ -551,91 +559,9 @@ def demo_board() -> Board:
     return parse_board(resource.read_text(encoding="utf-8"), origin=DEMO_BOARD_FILE)
 
 
-def _tuples(value):
-    """TOML arrays as tuples: strict validation then accepts them for tuple fields only."""
-    if isinstance(value, dict):
-        return {k: _tuples(v) for k, v in value.items()}
-    if isinstance(value, list):
-        return tuple(_tuples(v) for v in value)
-    return value
-
-
-def _config_error(exc: ValidationError, text: str, origin: str) -> ConfigError:
-    err = exc.errors(include_url=False)[0]
-    loc = _clean_loc(err["loc"])
-    key = _format_key(loc)
-    message = err["msg"]
-    if err["type"] == "missing":
-        message = "missing required key"
-    elif err["type"] == "extra_forbidden":
-        message = f"unknown key (found {err['input']!r})" if not isinstance(err["input"], dict) else "unknown key"
-    elif message.startswith("Value error, "):
-        message = message[len("Value error, "):]
-    more = len(exc.errors()) - 1
-    if more:
-        message += f" (and {more} more error{'s' if more > 1 else ''})"
-    cls = UnitError if err["type"] == "unit" else ConfigError
-    return cls(message, file=origin, line=_find_line(text, loc), key=key or None)
-
-
-_KIND_TAGS = {"clock", "switcher", "spur", "burst", "cable", "h_loop", "e_stub"}
-
-
-def _clean_loc(loc: tuple) -> tuple:
-    """Drop pydantic's union bookkeeping (variant tags and type names) from an error path."""
-    out: list = []
-    for part in loc:
-        if isinstance(part, str) and ("[" in part or "(" in part):
-            continue
-        if isinstance(part, str) and part in _KIND_TAGS and out and isinstance(out[-1], int):
-            continue
-        out.append(part)
-    return tuple(out)
-
-
-def _format_key(loc: tuple) -> str:
-    out = ""
-    for part in loc:
-        if isinstance(part, int):
-            out += f"[{part}]"
-        else:
-            out += ("." if out else "") + str(part)
-    return out
-
-
-_HEADER = re.compile(r"^\s*\[\[?\s*([A-Za-z0-9_.\-]+)\s*\]?\]\s*(#.*)?$")
-
-
-def _has_header(lines: list[str], table: str) -> bool:
-    return any((m := _HEADER.match(line)) and m.group(1) == table for line in lines)
-
-
-def _find_line(text: str, loc: tuple) -> int | None:
-    """Best-effort line of a key path in the raw TOML (tomllib keeps no positions)."""
-    lines = text.splitlines()
-    table, index, keys = "", None, [p for p in loc if isinstance(p, str)]
-    if loc and isinstance(loc[0], str) and len(loc) > 1 and isinstance(loc[1], int):
-        table, index = loc[0], loc[1]
-        keys = [p for p in loc[2:] if isinstance(p, str)]
-    elif loc and isinstance(loc[0], str) and (len(loc) > 1 or _has_header(lines, loc[0])):
-        table, keys = loc[0], [p for p in loc[1:] if isinstance(p, str)]
-    start, count = 0, -1
-    if table:
-        for i, line in enumerate(lines):
-            m = _HEADER.match(line)
-            if m and m.group(1) == table:
-                count += 1
-                if index is None or count == index:
-                    start = i
-                    break
-        else:
-            return None
-        if not keys:
-            return start + 1
-    key = keys[0] if keys else ""
-    for i in range(start, len(lines)):
-        if i > start and table and _HEADER.match(lines[i]):
-            break
-        if re.match(rf"^\s*{re.escape(key)}\s*=", lines[i]):
-            return i + 1
-    return start + 1 if table else None
+def _validate(source: TomlSource) -> Board:
+    check_schema(source)
+    try:
+        return Board.model_validate(source.data)
+    except pydantic.ValidationError as exc:
+        raise validation_to_config_error(source, exc, Board) from None

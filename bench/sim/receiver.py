@@ -24,9 +24,8 @@ the dwell), not as a coherent beat.
 
 from __future__ import annotations
 
-import importlib
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -65,7 +64,6 @@ MIXER_1DB_COMPRESSION_DBM = -10.0
 # Gaussian amplitude response H(df) = 2**(-(2*df/B6)**2): exactly -6.02 dB at df = B6/2.
 # Power response 4**(-(2*df/B6)**2); ENBW = sqrt(pi/(8 ln 2))*B6 = 1.0645*B3 (sheet §1.9).
 _ENBW_PER_B6 = math.sqrt(math.pi / (4.0 * math.log(2.0))) / math.sqrt(2.0)
-_LN4 = math.log(4.0)
 _GAUSS_DB_AT_HALF_B6 = 20.0 * math.log10(2.0)
 # Lines weaker than this below the noise floor after the filter are left out (no visible effect).
 _NEGLIGIBLE_BELOW_FLOOR_DB = 30.0
@@ -331,30 +329,15 @@ def _cispr_offsets_db(lines: Sequence[Line], detector: str) -> np.ndarray:
 
     Above 1 GHz CISPR defines no quasi-peak (sheet §1.1, band E); the peak reading stands in.
     """
+    # imported here: the detector models load scipy's ODE solvers, needed only by QP/CAV sweeps
+    from bench.sim.detectors import reading_offsets_db
+
     key = "quasi_peak" if detector == "QPE" else "cispr_average"
-    offsets_fn = _reading_offsets_function()
     out = np.zeros(len(lines))
     for i, line in enumerate(lines):
         if line.prf_hz is not None and line.duty < 1.0:
-            out[i] = offsets_fn(line.prf_hz, line.duty, line.freq_hz).get(key, 0.0)
+            out[i] = reading_offsets_db(line.prf_hz, line.duty, line.freq_hz).get(key, 0.0)
     return out
-
-
-def _reading_offsets_function() -> Callable[[float, float, float], dict]:
-    """``bench.sim.detectors.reading_offsets_db``, or a bound model when that module is absent."""
-    try:
-        module = importlib.import_module("bench.sim.detectors")
-    except ModuleNotFoundError as exc:
-        if exc.name != "bench.sim.detectors":
-            raise
-        return _fallback_offsets_db
-    return module.reading_offsets_db
-
-
-def _fallback_offsets_db(prf_hz: float, duty: float, freq_hz: float) -> dict:
-    """Bounds used without a detector model: QP read as peak (upper bound, Peak >= QP, sheet
-    §1.6), CISPR average as the long-term linear average, 20*log10(duty) (sheet §1.5)."""
-    return {"peak": 0.0, "quasi_peak": 0.0, "cispr_average": 20.0 * math.log10(duty)}
 
 
 def _detect(signal_mw: np.ndarray, noise_mw: float, detector: str, m: int,

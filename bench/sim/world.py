@@ -95,7 +95,6 @@ class World:
 
     def __init__(self, board: Board, seed: int = 0) -> None:
         self._board = board
-        self._seed = int(seed)
         self._scale = {}
         # The lines depend only on the pose and the band: repeated sweeps at one pose (max-hold,
         # several segments, final readings) reuse them. The receiver draws new noise every sweep.
@@ -103,7 +102,7 @@ class World:
         self._last_lines: list[Line] = []
         self._cache_lock = threading.Lock()
         for index, emitter in enumerate(board.emitters):
-            rng = np.random.default_rng([self._seed, index])
+            rng = np.random.default_rng([int(seed), index])
             offset_ppm = rng.uniform(-1.0, 1.0) * emitter.tolerance_ppm
             self._scale[emitter.name] = 1.0 + offset_ppm * 1e-6
 
@@ -113,11 +112,6 @@ class World:
     def board(self) -> Board:
         """The board this world was built from."""
         return self._board
-
-    @property
-    def seed(self) -> int:
-        """The integer seed of this world."""
-        return self._seed
 
     @property
     def noise_figure_db(self) -> float:
