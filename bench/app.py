@@ -14,10 +14,22 @@ from pathlib import Path
 
 from bench.errors import ConfigError, PlanError
 
-__all__ = ["BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report", "serve_simulator",
-           "export", "compare", "identify", "info", "run_results", "analyzer_caution"]
+#: Said at the end of every run: what a pre-scan is and is not.
+ESTIMATE = ("This pre-scan is an estimate, not a compliance verdict: defer to the applicable standard, "
+            "an accredited test house and local regulations.")
+
+__all__ = ["ESTIMATE", "unit_text", "prepare_resume", "BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report", "serve_simulator",
+           "export", "compare", "identify", "info", "outcome", "Outcome", "banner", "cautions",
+           "to_confirm"]
 
 log = logging.getLogger("bench.app")
+
+
+def unit_text(unit: str) -> str:
+    """How people write a level unit: ``dbuv_per_m`` -> ``dBµV/m``."""
+    from bench.analysis.verdict import UNIT_TEXT
+
+    return UNIT_TEXT.get(unit, unit)
 
 
 def demo_bench_path() -> Path:
@@ -100,33 +112,80 @@ def prepare(sequence_path: Path, options: BenchOptions, *, stack: ExitStack | No
     return session
 
 
-def analyzer_caution(session) -> str:
-    """The analyzer input caution, with the damage level its profile assumes."""
+def _roles(session) -> set[str]:
+    from bench.instruments import needs_of
+    from bench.steps import kind_of
+
+    return needs_of(session.plan, [(kind_of(s), s) for s in session.sequence.steps])
+
+
+def cautions(session) -> list[str]:
+    """The cautions that apply to the instruments this run uses (analyzer damage level first)."""
+    from bench.cautions import analyzer_caution, cautions_for
+
     ap = session.profiles["analyzer"]
-    return (f"analyzer input: profile {ap.name} assumes damage above {ap.damage_level_dbm:+g} dBm or any DC; "
-            "use an attenuator, a DC block and a limiter")
+    return cautions_for(_roles(session), analyzer_caution(ap.name, ap.damage_level_dbm))
 
 
-def run_sequence(session, *, out_root: Path, plots: bool = True) -> Path:
-    """Carry out a prepared session in a new run folder (and write its report). Returns the folder."""
+def to_confirm(session) -> list[str]:
+    """What will move or switch on a real bench (empty on the simulated bench)."""
+    from bench.cautions import MOTION, POWER
+
+    if session.sim is not None:
+        return []
+    roles = _roles(session)
+    return [MOTION[r] for r in ("stage", "mast", "turntable") if r in roles] + (
+        [POWER] if "supply" in roles else [])
+
+
+def banner(session) -> list[str]:
+    """What a run is about to do, for people: sequence, board under test, bench, plan."""
+    seq = session.sequence
+    lines = [f"sequence   {seq.name} ({session.sequence_path})"]
+    lines.append(f"board      {seq.eut.describe()}" if seq.eut is not None
+                 else "board      not named (an [eut] table in the sequence names it in the report)")
+    if session.sim is not None:
+        settings = session.sim_settings or {}
+        board = settings.get("board", "demo")
+        lines.append(f"bench      simulated: {session.bench_path.name}, board "
+                     f"{'demo board' if board == 'demo' else Path(board).name}, seed {settings.get('seed', 1)}")
+        if not settings.get("realtime"):
+            lines.append("           the simulator's clock is accelerated: the run takes seconds; the plan's "
+                         "times are what a real bench would take")
+    else:
+        lines.append(f"bench      {session.bench_path}")
+    return lines + ["plan       " + line if i == 0 else "           " + line
+                    for i, line in enumerate(session.plan.summary_lines())]
+
+
+def run_sequence(session, *, out_root: Path, plots: bool = True, unattended: bool = False) -> Path:
+    """Carry out a prepared session in a new run folder (and write its report). Returns the folder.
+
+    ``unattended``: the operator skipped the confirmation before motion; recorded in the manifest.
+    """
     from bench.runner import execute_new_run
 
-    folder = execute_new_run(session, out_root=out_root)
+    folder = execute_new_run(session, out_root=out_root, unattended=unattended)
     if plots:
         report(folder)
     return folder
 
 
-def resume(folder: Path, options: BenchOptions, *, accept_changes: bool = False, plots: bool = True,
-           stack: ExitStack | None = None) -> Path:
-    """Continue an interrupted run from the first action not done (and write its report).
+def prepare_resume(folder: Path, options: BenchOptions, *, accept_changes: bool = False,
+                   stack: ExitStack | None = None):
+    """Check that an interrupted run can go on, and prepare its session; writes nothing.
 
     On the simulated bench the run's own board and seed are used. A file the run read that
     changed since (limits, tables, profiles, board), or another board or seed, is refused
-    with the list of what changed unless ``accept_changes``; accepted changes are recorded.
+    with the list of what changed unless ``accept_changes``.
+
+    Returns
+    -------
+    (bench.session.Session, str)
+        The session and a line saying where the run resumes and how much is left.
     """
     from bench.provenance import changed_files
-    from bench.runner import resumable_files, resume_run
+    from bench.runner import resumable_files, resume_point
 
     seq_path, bench_file, manifest = resumable_files(folder, bench_path=options.bench_path)
     sim = options.sim or bool(manifest.get("simulated") and options.bench_path is None)
@@ -136,7 +195,18 @@ def resume(folder: Path, options: BenchOptions, *, accept_changes: bool = False,
     if changes and not accept_changes:
         raise ConfigError(f"{folder}: files the run read changed since it started: {'; '.join(changes)}. "
                           "Restore them, or resume with --accept-changes to continue with the new ones")
-    resume_run(session, folder, resumed=int(manifest.get("resumed", 0)), accepted=changes)
+    session.accepted_changes = changes
+    session.resumed = int(manifest.get("resumed", 0))
+    return session, resume_point(folder, session.plan)
+
+
+def resume(folder: Path, session, *, plots: bool = True, unattended: bool = False,
+           accept_changes: bool = False) -> Path:
+    """Continue a run prepared by :func:`prepare_resume` (and write its report)."""
+    from bench.runner import resume_run
+
+    resume_run(session, folder, resumed=session.resumed, accepted=session.accepted_changes,
+               unattended=unattended)
     if plots:
         report(folder)
     return Path(folder)
@@ -187,21 +257,32 @@ def serve_simulator(*, port: int = 0, board: Path | None = None, seed: int = 1, 
     return serve_forever(port=port, board=board, seed=seed, realtime=realtime, announce=announce)
 
 
-def run_results(folder: Path):
-    """(results to show, warnings) of a run: suspects, ambient signals and every final reading."""
-    from bench.steps import KINDS
+@dataclass(frozen=True)
+class Outcome:
+    """How a run ended, for people: its verdict, distinct warnings and where the report is."""
+
+    folder: Path
+    state: str
+    verdict: object
+    warnings: tuple[str, ...]
+    report: Path | None
+
+
+def outcome(folder: Path) -> Outcome:
+    """The verdict, the distinct warnings and the report of a run folder."""
+    from bench.analysis.verdict import verdict_of
     from bench.store import open_run
 
     run = open_run(folder)
     try:
-        results = run.results()
-        events = run.events()
-        shown = {s["label"] for s in run.manifest().get("steps", [])
-                 if s.get("kind") in KINDS and KINDS[s["kind"]].shows_all_results}
+        results, events, manifest = run.results(), run.events(), run.manifest()
     finally:
         run.close()
-    warnings = list(events.loc[events["level"] == "warning", "text"])
-    return results[(results.status != "pass") | (results.step_label.isin(shown))], warnings
+    remeasured = {s["of"]: s["label"] for s in manifest.get("steps", []) if s.get("of")}
+    warnings = tuple(dict.fromkeys(events.loc[events["level"] == "warning", "text"]))
+    report = Path(folder) / "report.html"
+    return Outcome(Path(folder), str(manifest.get("state", "")), verdict_of(results, remeasured),
+                   warnings, report if report.is_file() else None)
 
 
 def export(folder: Path, csv_dir: Path, *, parquet: bool = False) -> list[Path]:

@@ -36,7 +36,7 @@ table { border-collapse: collapse; margin: .6em 0; font-size: .9em; }
 th, td { border: 1px solid #bbb; padding: .2em .5em; text-align: left; }
 th { background: #eef3f7; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
-tr.fail td { background: #fbe3e4; } tr.near td { background: #fff1dc; }
+tr.fail td { background: #fbe3e4; } tr.marginal td { background: #fff1dc; }
 tr.ambient td { color: #777; }
 img { max-width: 100%; border: 1px solid #ddd; }
 pre { background: #f6f6f6; padding: .5em; overflow-x: auto; font-size: .85em; }

@@ -310,8 +310,7 @@ class Plan:
 
     def summary_lines(self) -> list[str]:
         """Short lines for a person: per step, totals, warnings."""
-        lines = [f"plan '{self.sequence_name}': {len(self.steps)} steps, "
-                 f"{len(self.actions)} actions"]
+        lines = [f"'{self.sequence_name}': {len(self.steps)} steps, {len(self.actions)} actions"]
         for step in self.steps:
             lines.append(_step_line(step))
         lines.append(f"total: {format_duration(self.total_time_s)}, {self.n_traces} traces, "

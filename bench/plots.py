@@ -36,7 +36,7 @@ UNIT_TEXT = {"dbuv": "dBuV", "dbuv_per_m": "dBuV/m", "dbua_per_m": "dBuA/m", "db
 _MAX_BUCKETS = 3000
 _LIMIT_STYLE = {"quasi-peak": ("-", "#b2182b"), "peak": ("--", "#d6604d"),
                 "average": (":", "#762a83")}
-_STATUS_MARKER = {"fail": ("v", "#b2182b"), "near": ("^", "#e08214"), "pass": ("o", "#1b7837"),
+_STATUS_MARKER = {"fail": ("v", "#b2182b"), "marginal": ("^", "#e08214"), "pass": ("o", "#1b7837"),
                   "ambient": ("s", "#7f7f7f"), "inconclusive": ("D", "#5e3c99"),
                   "hot spot": ("*", "#b35806")}
 

@@ -12,7 +12,7 @@ import time
 
 __all__ = ["Progress", "format_duration"]
 
-log = logging.getLogger("bench.run")
+log = logging.getLogger("bench.progress")
 
 
 def format_duration(seconds: float) -> str:

@@ -60,6 +60,8 @@ def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, 
         "steps": steps,
         "files": session.used_files(),
     }
+    if session.sequence.eut is not None:
+        manifest["eut"] = session.sequence.eut.model_dump(exclude_none=True)
     if session.sim_settings is not None:
         manifest["simulator"] = dict(session.sim_settings)
     _board_entry(session.bench, manifest, copies)
@@ -217,9 +219,13 @@ def _finish(store: RunStore, executor: Executor) -> None:
     store.checkpoint()
 
 
-def execute_new_run(session, *, out_root: Path) -> Path:
-    """Create the run folder and carry out the plan. Returns the run folder."""
+def execute_new_run(session, *, out_root: Path, unattended: bool = False) -> Path:
+    """Create the run folder and carry out the plan. Returns the run folder.
+
+    ``unattended`` (the operator skipped the confirmation before motion) is recorded.
+    """
     manifest, copies = build_manifest(session, simulated=session.sim is not None)
+    manifest["unattended"] = bool(unattended)
     # connect before creating the run folder: an unreachable bench leaves nothing behind
     station = _connector(session)()
     try:
@@ -258,7 +264,26 @@ def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Pat
     return seq_path, bench_file, manifest
 
 
-def resume_run(session, folder: Path, *, resumed: int, accepted: list[str] = ()) -> Path:
+def resume_point(folder: Path, plan) -> str:
+    """Where a run resumes: the first action not done and how much is left."""
+    ro = open_run(folder)
+    try:
+        done = ro.done_actions()
+    finally:
+        ro.close()
+    left = [a for a in plan.actions if a.index not in done]
+    if not left:
+        return "every action is done; the run will be closed and reported"
+    first = left[0]
+    from bench.planning import format_duration
+
+    return (f"{len(done)} of {len(plan.actions)} actions done; continuing at action {first.index + 1} "
+            f"(step '{first.step_label}'), {len(left)} left, about "
+            f"{format_duration(sum(a.est_time_s for a in left))} of instrument time")
+
+
+def resume_run(session, folder: Path, *, resumed: int, accepted: list[str] = (),
+               unattended: bool = False) -> Path:
     """Continue an interrupted run from the first action not done.
 
     ``accepted`` lists input files that changed since the run started and that the operator
@@ -267,7 +292,7 @@ def resume_run(session, folder: Path, *, resumed: int, accepted: list[str] = ())
     store = RunStore(Path(folder))
     try:
         store.lock()
-        changes = {"state": "running", "resumed": resumed + 1}
+        changes = {"state": "running", "resumed": resumed + 1, "unattended": bool(unattended)}
         if accepted:
             changes["files"] = session.used_files()
             changes["accepted_changes"] = list(store.manifest().get("accepted_changes", [])) + list(accepted)

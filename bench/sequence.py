@@ -47,6 +47,7 @@ __all__ = [
     "AzimuthRange",
     "AngleSearch",
     "HeightSearch",
+    "Eut",
     "Sequence",
     "load_sequence",
 ]
@@ -54,6 +55,24 @@ __all__ = [
 STEP_KINDS = tuple(KINDS)
 
 Step = Annotated[Union[step_models()], Field(discriminator="kind")]
+
+
+class Eut(StrictModel):
+    """``[eut]``: the equipment under test, as people name it (shown in the banner and report)."""
+
+    name: Annotated[StrictStr, Field(min_length=1, max_length=120)]
+    revision: Optional[Annotated[StrictStr, Field(max_length=120)]] = None
+    serial: Optional[Annotated[StrictStr, Field(max_length=120)]] = None
+    notes: Optional[Annotated[StrictStr, Field(max_length=2000)]] = None
+
+    def describe(self) -> str:
+        """``sensor board rev C, serial 0042``."""
+        text = self.name
+        if self.revision:
+            text += f" rev {self.revision}"
+        if self.serial:
+            text += f", serial {self.serial}"
+        return text
 
 
 class Sequence(StrictModel):
@@ -65,6 +84,8 @@ class Sequence(StrictModel):
         Always 1.
     name : str
     description : str or None
+    eut : Eut or None
+        The equipment under test (optional ``[eut]`` table).
     sweeps : dict of str to SweepSettings
     steps : tuple of Step
     warnings : tuple of str
@@ -74,6 +95,7 @@ class Sequence(StrictModel):
     schema_version: Literal[1] = Field(alias="schema")
     name: Label
     description: Optional[StrictStr] = None
+    eut: Optional[Eut] = None
     sweeps: Annotated[dict[Label, SweepSettings], Field(min_length=1)]
     steps: Annotated[tuple[Step, ...], Field(min_length=1)]
 

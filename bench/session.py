@@ -56,6 +56,8 @@ class Session:
         self.sim = sim
         self.profiles = profiles if profiles is not None else profiles_for(bench)
         self.sim_settings = sim_settings
+        self.accepted_changes: list[str] = []
+        self.resumed = 0
         self.plan = None
         self._limits: dict[str, object] = {}
 

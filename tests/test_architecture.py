@@ -48,7 +48,7 @@ GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "drivers": (("bench.drivers.*",), ("protocol", "files", *LEAVES)),
     "analysis": (("bench.analysis.*",), ("files", *LEAVES)),
     "store": (("bench.store",), LEAVES),
-    "output helpers": (("bench.plots", "bench.htmlkit"), ("analysis", "store", *LEAVES)),
+    "output helpers": (("bench.plots", "bench.htmlkit", "bench.cautions"), ("analysis", "store", *LEAVES)),
     "planning": (("bench.planning",), ("files", *LEAVES)),
     "steps": (("bench.steps.*", "bench.sequence"),
               ("planning", "output helpers", "store", "analysis", "files", *LEAVES)),

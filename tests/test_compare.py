@@ -99,10 +99,10 @@ def test_suspects_matched_by_frequency_with_tolerance():
     assert match_tolerance_hz([48e6, 500e6], 120e3) == pytest.approx([120e3, 500e3])
     before = pd.DataFrame({"freq_hz": [48.00e6, 100e6, 500.0e6], "level": [45.0, 38.0, 41.0],
                            "detector": "peak", "margin_db": [-5.0, 2.0, -1.0],
-                           "status": ["fail", "near", "fail"]})
+                           "status": ["fail", "marginal", "fail"]})
     after = pd.DataFrame({"freq_hz": [48.05e6, 500.4e6, 700e6], "level": [35.0, 43.5, 39.0],
                           "detector": "peak", "margin_db": [5.0, -3.5, 1.0],
-                          "status": ["near", "fail", "near"]})
+                          "status": ["marginal", "fail", "marginal"]})
     table = match_suspects(before, after, 120e3)
     rows = {r.change + str(round((r.freq_before_hz if r.change != "new" else r.freq_after_hz)
                                  / 1e6)): r for r in table.itertuples()}

@@ -128,7 +128,7 @@ def test_bench_run_writes_a_complete_run(tmp_path, capsys):
     assert on[near_72].max() > amb[near_72].max() + 10.0
     assert abs(on[near_fm].max() - amb[near_fm].max()) < 3.0
     run.close()
-    assert "run stored in" in out.out
+    assert "run folder " in out.out and out.out.splitlines()[-1].startswith("This pre-scan is an estimate")
 
 
 def test_bad_sequence_is_one_line_and_writes_nothing(tmp_path, capsys):
@@ -298,7 +298,7 @@ def test_far_field_prescan_suspects_ambient_and_finals(tmp_path, capsys):
     # The demo board's cable resonance makes its 72 MHz clock harmonic fail (demo scenario)
     assert "fail" in set(pre[(pre.freq_hz - 72e6).abs() < 0.3e6].status)
     # Every non-ambient suspect has final readings with peak, quasi-peak and average
-    suspects = pre[pre.status.isin(["fail", "near"])]
+    suspects = pre[pre.status.isin(["fail", "marginal"])]
     assert len(suspects) > 0
     for f in suspects.freq_hz:
         # the final step re-centres on the signal within +-RBW before reading it
@@ -320,7 +320,7 @@ def test_far_field_prescan_suspects_ambient_and_finals(tmp_path, capsys):
     # Final readings under 1 GHz are compared with the quasi-peak line; CISPR 32 has no average
     # line there (Table A.4), so the average reading is information only
     assert set(fin[fin.detector == "cispr-average"].status) == {"info"}
-    assert set(fin[fin.detector == "quasi-peak"].status) <= {"pass", "fail"}
+    assert set(fin[fin.detector == "quasi-peak"].status) <= {"pass", "marginal", "fail"}
 
 
 @pytest.mark.parametrize(

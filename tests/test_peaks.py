@@ -172,7 +172,7 @@ def test_select_suspects_against_cispr32_class_b():
     # 231 MHz (margin 11) and 60 MHz (20) are not suspects; 2 GHz has no QP limit.
     assert suspects["freq_hz"].tolist() == [100 * MHZ, 229 * MHZ, 500 * MHZ]
     assert suspects["margin_db"].tolist() == [-2.0, 4.0, 0.0]
-    assert suspects["status"].tolist() == ["fail", "near", "near"]
+    assert suspects["status"].tolist() == ["fail", "marginal", "marginal"]
     assert suspects["limit"].tolist() == [40.0, 40.0, 47.0]
 
 

@@ -176,7 +176,7 @@ def select_suspects(peaks: pd.DataFrame, limit_at_freq: Callable | np.ndarray,
     -------
     pandas.DataFrame
         The selected rows with added ``limit``, ``margin_db`` (= limit - level; negative means
-        over the limit) and ``status``: ``"fail"`` when over the limit, ``"near"`` otherwise.
+        over the limit) and ``status``: ``"fail"`` when over the limit, ``"marginal"`` otherwise (within the margin below the limit).
     """
     freq = peaks["freq_hz"].to_numpy(dtype=float)
     limit = np.asarray(limit_at_freq(freq) if callable(limit_at_freq) else limit_at_freq,
@@ -188,7 +188,7 @@ def select_suspects(peaks: pd.DataFrame, limit_at_freq: Callable | np.ndarray,
     table["limit"] = limit
     table["margin_db"] = limit - table["level"].to_numpy(dtype=float)
     chosen = table[np.isfinite(limit) & (table["margin_db"].to_numpy() <= margin_db)].copy()
-    chosen["status"] = np.where(chosen["margin_db"] < 0.0, "fail", "near")
+    chosen["status"] = np.where(chosen["margin_db"] < 0.0, "fail", "marginal")
     return chosen.reset_index(drop=True)
 
 

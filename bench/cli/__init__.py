@@ -45,6 +45,8 @@ def build_parser() -> argparse.ArgumentParser:
     bench_args(sp)
     sp.add_argument("--out", type=Path, default=Path("runs"), help="folder for run folders (default ./runs)")
     sp.add_argument("--no-plots", action="store_true", help="skip PNG plots and the report")
+    sp.add_argument("--unattended", action="store_true",
+                    help="skip the confirmation before the first motion or power switch (overnight runs; recorded)")
     sp.add_argument("--fault", action="append", default=[], metavar="KIND=N",
                     help="with --sim: inject a fault, e.g. drop-after-sweeps=20 (repeatable)")
 
@@ -55,6 +57,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("resume", help="continue an interrupted run from the first action not done")
     sp.add_argument("run", type=Path)
     bench_args(sp)
+    sp.add_argument("--unattended", action="store_true",
+                    help="skip the confirmation before the first motion or power switch (recorded)")
     sp.add_argument("--accept-changes", action="store_true",
                     help="continue although limit, table, profile or board files changed since the run started")
     sp.add_argument("--no-plots", action="store_true")
@@ -103,10 +107,18 @@ def _setup_logging(verbose: bool) -> None:
     else:
         handler = logging.StreamHandler(sys.stderr)
         handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s"))
+    if not verbose:
+        handler.addFilter(_quiet)
     root = logging.getLogger("bench")
     root.handlers[:] = [handler]
     root.setLevel(logging.DEBUG if verbose else logging.INFO)
     root.propagate = False
+
+
+def _quiet(record: logging.LogRecord) -> bool:
+    """Without -v the terminal shows errors and the heartbeat only; run.log keeps everything,
+    and the warnings are listed once when the run ends."""
+    return record.levelno >= logging.ERROR or record.name == "bench.progress"
 
 
 def _sigterm_as_interrupt():

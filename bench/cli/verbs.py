@@ -12,32 +12,45 @@ from pathlib import Path
 from bench import app
 from bench.errors import ConfigError
 
-__all__ = ["VERBS", "SAFETY_LINE", "ESTIMATE_LINE"]
-
-SAFETY_LINE = ("Safety: analyzer inputs are damaged by more than about +30 dBm or any DC (use an "
-               "attenuator, DC block, limiter); boards may carry mains or high voltage; a moving "
-               "stage can pinch and crash a probe. A pre-scan is an estimate, not a compliance verdict.")
-ESTIMATE_LINE = ("This pre-scan is an estimate, not a compliance verdict: defer to the applicable standard, "
-                 "an accredited test house and local regulations.")
-
+__all__ = ["VERBS"]
 
 def _options(args) -> app.BenchOptions:
     return app.BenchOptions(bench_path=args.bench, sim=args.sim, board=args.board, seed=args.seed,
                             realtime=args.realtime, faults=tuple(getattr(args, "fault", ()) or ()))
 
 
-def _print_plan(session) -> None:
-    for line in session.plan.summary_lines():
-        print(line)
-    print(app.analyzer_caution(session))
-    for w in tuple(session.sequence.warnings) + tuple(session.bench.warnings):
-        print(f"warning: {w}")
+def _print_banner(session, *, what: str) -> None:
+    """Sequence, board, bench and plan; the cautions that apply; warnings once."""
+    print(f"emission-bench {what}")
+    for line in app.banner(session):
+        print(f"  {line}")
+    print("  cautions:")
+    for text in app.cautions(session):
+        print(f"   - {text}")
+    for w in dict.fromkeys(tuple(session.plan.warnings) + tuple(session.bench.warnings)):
+        print(f"  warning: {w}")
+
+
+def _confirm(session, args) -> None:
+    """On a real bench, the operator confirms before the first motion or power switch."""
+    items = app.to_confirm(session)
+    if not items or args.unattended:
+        return
+    if not sys.stdin.isatty():
+        raise ConfigError("this run moves instruments or switches power and there is no terminal to "
+                          "confirm it: run it from a terminal, or add --unattended once the bench is safe")
+    print("Before anything moves:")
+    for text in items:
+        print(f"  - {text}")
+    answer = input("Type 'yes' when the bench is safe to start: ").strip().lower()
+    if answer != "yes":
+        raise ConfigError(f"not started: the operator answered {answer!r}, not 'yes'")
 
 
 def cmd_check(args) -> int:
     with ExitStack() as stack:
         session = app.prepare(args.sequence, _options(args), stack=stack)
-        _print_plan(session)
+        _print_banner(session, what="check")
         print("check: OK (no instrument was touched)")
     return 0
 
@@ -45,39 +58,43 @@ def cmd_check(args) -> int:
 def cmd_run(args) -> int:
     with ExitStack() as stack:
         session = app.prepare(args.sequence, _options(args), stack=stack)
-        print(SAFETY_LINE, file=sys.stderr)
-        if session.sim is not None:
-            a = session.sim.addresses
-            print(f"simulated bench: analyzer {a['analyzer']}, stage {a['stage']} (also {a['stage_pty']}), "
-                  f"mast and turntable {a['mast']}, supply {a['supply']}", file=sys.stderr)
-        _print_plan(session)
-        folder = app.run_sequence(session, out_root=args.out, plots=not args.no_plots)
-    _print_results(folder)
-    print(f"run stored in {folder}")
+        _print_banner(session, what="run")
+        _confirm(session, args)
+        folder = app.run_sequence(session, out_root=args.out, plots=not args.no_plots,
+                                  unattended=args.unattended)
+    _print_outcome(folder)
     return 0
 
 
-def _print_results(folder: Path) -> None:
-    """The suspects and final readings of a run, as a table on the terminal (and a note)."""
+def _print_outcome(folder: Path) -> None:
+    """The verdict line, the worst findings, the distinct warnings and where the report is."""
     from rich.console import Console
     from rich.table import Table
 
-    results, warnings = app.run_results(folder)
+    result = app.outcome(folder)
     console = Console(width=None if sys.stdout.isatty() else 132)
-    if not results.empty:
-        table = Table(title="results (levels corrected through the transducer chain)")
-        for col in ("step", "MHz", "level", "detector", "limit", "margin dB", "pol", "height m", "az deg", "status"):
-            table.add_column(col, justify="right" if col not in ("step", "detector", "pol", "status") else "left")
-        for _, r in results.iterrows():
-            table.add_row(r.step_label, f"{r.freq_hz / 1e6:.3f}", _num(r.level, 1), r.detector,
-                          _num(r.limit_level, 1), _num(r.margin_db, 1), str(r.polarization or ""),
-                          _num(r.height_m, 2), _num(r.azimuth_deg, 0), r.status)
+    print(result.verdict.line())
+    findings = result.verdict.findings
+    if not findings.empty:
+        table = Table(title=f"worst findings ({min(len(findings), 10)} of {len(findings)} frequencies)")
+        for col in ("step", "f (MHz)", "level", "limit", "margin (dB)", "detector",
+                    "polarization", "height (m)", "azimuth (°)", "status"):
+            table.add_column(col, justify="left" if col in ("step", "detector", "polarization", "status")
+                             else "right")
+        for _, r in findings.head(10).iterrows():
+            unit = app.unit_text(r.unit)
+            table.add_row(r.step_label, f"{r.freq_hz / 1e6:.3f}", f"{_num(r.level, 1)} {unit}",
+                          f"{_num(r.limit_level, 1)} {unit}", _num(r.margin_db, 1), r.detector,
+                          str(r.polarization or ""), _num(r.height_m, 2), _num(r.azimuth_deg, 0), r.status)
         console.print(table)
-    for w in warnings[:10]:
+    for w in result.warnings[:10]:
         console.print(f"warning: {w}", markup=False)
-    if len(warnings) > 10:
-        console.print(f"... {len(warnings) - 10} more warnings in the run's events (report.html)")
-    print(ESTIMATE_LINE)
+    if len(result.warnings) > 10:
+        console.print(f"... {len(result.warnings) - 10} more warnings in run.log and the report")
+    print(f"run folder {result.folder}")
+    if result.report is not None:
+        print(f"report     {result.report}")
+    print(app.ESTIMATE)
 
 
 def _num(value, digits: int) -> str:
@@ -90,9 +107,14 @@ def _num(value, digits: int) -> str:
 
 def cmd_resume(args) -> int:
     with ExitStack() as stack:
-        folder = app.resume(args.run, _options(args), accept_changes=args.accept_changes,
-                            plots=not args.no_plots, stack=stack)
-    print(f"run completed in {folder}")
+        session, point = app.prepare_resume(args.run, _options(args), accept_changes=args.accept_changes,
+                                            stack=stack)
+        _print_banner(session, what="resume")
+        print(f"  resuming  {args.run}: {point}")
+        _confirm(session, args)
+        folder = app.resume(args.run, session, plots=not args.no_plots, unattended=args.unattended,
+                            accept_changes=args.accept_changes)
+    _print_outcome(folder)
     return 0
 
 
@@ -108,8 +130,10 @@ def cmd_sim(args) -> int:
 
 
 def cmd_export(args) -> int:
-    for f in app.export(args.run, args.csv, parquet=args.parquet):
-        print(f)
+    files = app.export(args.run, args.csv, parquet=args.parquet)
+    print(f"exported {args.run} to {args.csv}:")
+    for f in files:
+        print(f"  {f.name:28s} {f.stat().st_size / 1e3:10.1f} kB")
     return 0
 
 

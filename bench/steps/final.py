@@ -250,17 +250,18 @@ def run_finals(store, measurer, step: FinalStep, prescan_step, sweep, ctx, mast_
                turntable_limits_deg, *, points: int = 101) -> list[dict]:
     """Remeasure every non-ambient suspect of ``prescan_step``; returns the result rows."""
     suspects = store.results(prescan_step.label)
-    suspects = suspects[suspects["status"].isin(["fail", "near"])]
+    suspects = suspects[suspects["status"].isin(["fail", "marginal"])]
     rows = []
     for _, s in suspects.iterrows():
         pose = (_num(s["height_m"]), s["polarization"] if isinstance(s["polarization"], str) else None,
                 _num(s["azimuth_deg"]))
         rows += _final_rows(measurer, step, sweep, ctx, float(s["freq_hz"]), pose,
-                            (mast_limits_m, turntable_limits_deg), points)
+                            (mast_limits_m, turntable_limits_deg), points, prescan_step.margin_db)
     return rows
 
 
-def _final_rows(measurer, step: FinalStep, sweep, ctx, f0: float, pose, limits, points: int) -> list[dict]:
+def _final_rows(measurer, step: FinalStep, sweep, ctx, f0: float, pose, limits, points: int,
+                margin_db: float) -> list[dict]:
     """Re-centre, search, then read every detector at the best pose."""
     height, pol, azimuth = pose
     peak_seg = _narrow_segment(f0, step.span_hz, sweep.rbw_hz, "peak", points, step.dwell_s)
@@ -276,18 +277,22 @@ def _final_rows(measurer, step: FinalStep, sweep, ctx, f0: float, pose, limits, 
     for det in detectors:
         seg = _zero_span_segment(f_exact, sweep.rbw_hz, det, points, step.dwell_s)
         raw = _read_at(measurer, seg, f_exact, sweep.rbw_hz)
-        rows.append(_final_row(step, ctx, f_exact, det, raw, best))
+        rows.append(_final_row(step, ctx, f_exact, det, raw, best, margin_db))
     return rows
 
 
-def _final_row(step: FinalStep, ctx, f0: float, det: str, raw_dbuv: float, pose) -> dict:
-    """One final reading compared with the limit line of its detector."""
+def _final_row(step: FinalStep, ctx, f0: float, det: str, raw_dbuv: float, pose, margin_db: float) -> dict:
+    """One final reading compared with the limit line of its detector.
+
+    ``marginal``: it passes by less than ``margin_db`` (the prescan's margin).
+    """
     level = float(ctx.correct(np.array([f0]), np.array([raw_dbuv]))[0])
     lim_det = LIMIT_DETECTOR.get(det, "peak")
     limit = float(ctx.limit.level(lim_det, np.array([f0]))[0])
     if np.isfinite(limit):
         margin = limit - level
-        status, note = ("pass" if margin >= 0 else "fail"), ""
+        status = "fail" if margin < 0 else "marginal" if margin < margin_db else "pass"
+        note = ""
     else:
         # e.g. CISPR 32 has no average (or peak) line below 1 GHz: the reading is information
         margin, status = None, "info"
