@@ -28,7 +28,7 @@ POWER = ("The bench supply will switch the board off and on (ambient captures): 
 def analyzer_caution(profile_name: str, damage_level_dbm: float) -> str:
     """The analyzer input caution with the damage level the profile assumes."""
     return (f"Analyzer input (profile {profile_name}): damaged above {damage_level_dbm:+g} dBm or by any "
-            "DC; use an attenuator, a DC block and a limiter, especially with probes near switching "
+            "DC voltage (0 V DC rating); use an attenuator, a DC block and a limiter, especially with probes near switching "
             "nodes and with line impedance stabilisation networks.")
 
 

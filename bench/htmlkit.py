@@ -40,6 +40,16 @@ tr.fail td { background: #fbe3e4; } tr.marginal td { background: #fff1dc; }
 tr.ambient td { color: #777; }
 img { max-width: 100%; border: 1px solid #ddd; }
 pre { background: #f6f6f6; padding: .5em; overflow-x: auto; font-size: .85em; }
+pre.wrap { white-space: pre-wrap; overflow-wrap: anywhere; }
+.verdict { font-size: 1.25em; font-weight: 700; padding: .6em 1em; margin: 1em 0; border: 3px solid #555;
+           font-family: ui-monospace, monospace; white-space: pre-wrap; }
+.verdict.fail { border-color: #b2182b; background: #fbe3e4; }
+.verdict.marginal { border-color: #e08214; background: #fff1dc; }
+.verdict.pass { border-color: #1b7837; background: #e6f4ea; }
+.subtitle { color: #555; }
+.settings { color: #333; }
+table { max-width: 100%; overflow-x: auto; display: block; }
+summary { cursor: pointer; margin: .4em 0; }
 """
 
 def esc(value) -> str:

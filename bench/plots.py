@@ -117,7 +117,7 @@ def _log_freq_axes(ax, lo_hz: float, hi_hz: float, unit: str) -> None:
 
 
 def spectrum_png(path, freq_hz, level, *, unit: str, title: str, ambient=None, limits=None,
-                 suspects=None, extra_traces=None) -> Path:
+                 suspects=None, extra_traces=None, log_freq: bool = True, label_worst: int = 3) -> Path:
     """Spectrum on a log-frequency axis (MHz) with limit lines, ambient and suspects.
 
     Parameters
@@ -138,6 +138,10 @@ def spectrum_png(path, freq_hz, level, *, unit: str, title: str, ambient=None, l
         Rows with ``freq_hz``, ``level``, ``status``; one marker shape per status.
     extra_traces : list of (freq_hz, level, label), optional
         More traces to overlay.
+    log_freq : bool
+        Log-frequency axis (a wide sweep); False for a narrow zoom around one emission.
+    label_worst : int
+        Write the margin beside this many suspects with the lowest margin (``margin_db``).
 
     Returns
     -------
@@ -162,11 +166,36 @@ def spectrum_png(path, freq_hz, level, *, unit: str, title: str, ambient=None, l
         _draw_limits(ax, limits, lo_hz, hi_hz)
     if suspects is not None and len(suspects):
         _draw_suspects(ax, suspects)
-    _log_freq_axes(ax, lo_hz, hi_hz, unit)
+        _label_margins(ax, suspects, label_worst)
+    if log_freq:
+        _log_freq_axes(ax, lo_hz, hi_hz, unit)
+    else:
+        _linear_freq_axes(ax, lo_hz, hi_hz, unit)
     ax.set_title(title)
-    ax.legend(loc="best", fontsize=8)
+    # below the axes: a legend inside would hide the spectrum it explains
+    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.13), ncol=4, fontsize=8, frameon=False)
     fig.tight_layout()
     return _save(fig, path)
+
+
+def _label_margins(ax, suspects, count: int) -> None:
+    """The margin in dB beside the ``count`` markers with the lowest margin."""
+    if "margin_db" not in suspects or count <= 0:
+        return
+    rows = suspects.dropna(subset=["margin_db"])
+    rows = rows[~rows["status"].astype(str).str.contains("ambient")]  # ambient margins mean nothing
+    worst = rows.nsmallest(count, "margin_db")
+    for _, row in worst.iterrows():
+        ax.annotate(f"{row['margin_db']:+.1f} dB", (row["freq_hz"] / 1e6, row["level"]),
+                    textcoords="offset points", xytext=(4, 6), fontsize=8, color="#b2182b")
+
+
+def _linear_freq_axes(ax, lo_hz: float, hi_hz: float, unit: str) -> None:
+    ax.set_xlim(lo_hz / 1e6, hi_hz / 1e6)
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _: f"{v:.3f}"))
+    ax.set_xlabel("frequency (MHz)")
+    ax.set_ylabel(f"level ({_unit_text(unit)})")
+    ax.grid(True, alpha=0.4)
 
 
 def comparison_png(path, before, after, delta, *, unit: str, title: str, limits=None) -> Path:

@@ -16,58 +16,49 @@ import pandas as pd
 from bench import plots
 from bench.analysis import runview
 from bench.errors import BenchError, StoreError
+from bench.analysis.verdict import UNIT_TEXT, verdict_of
+from bench.cautions import analyzer_caution, cautions_for
 from bench.htmlkit import DISCLAIMER, embed_png, esc, html_table, mhz, page, safe_name
 from bench.steps import KINDS
 
-__all__ = ["DISCLAIMER", "SAFETY_CAUTIONS", "MapViews", "StepWriter", "write_report"]
+__all__ = ["DISCLAIMER", "MapViews", "StepWriter", "write_report"]
 
-SAFETY_CAUTIONS = (
-    "Analyzer inputs are easily damaged, typically above +30 dBm or by any DC voltage (0 V DC "
-    "rating): use an attenuator, a DC block and a limiter, especially with line impedance "
-    "stabilisation networks and probes near switching nodes.",
-    "Boards under test may carry mains or high voltage; probes and stages come close to them.",
-    "A moving stage can pinch fingers and crash a probe into a board: soft limits, a safe "
-    "travel height and an emergency stop are the operator's responsibility; the tool enforces "
-    "only the limits it is given.",
-    "Intentional radiators near people: follow the applicable RF exposure rules.",
-)
-
-_RESULT_COLUMNS = (("freq_hz", "frequency (MHz)"), ("level", "level"), ("detector", "detector"),
-                   ("limit_level", "limit"), ("margin_db", "margin (dB)"),
-                   ("polarization", "polarization"), ("height_m", "height (m)"),
-                   ("azimuth_deg", "azimuth (deg)"), ("status", "status"), ("note", "note"))
+_RESULT_COLUMNS = (("freq_hz", "Frequency (MHz)"), ("level", "Level ({unit})"), ("detector", "Detector"),
+                   ("limit_level", "Limit ({unit})"), ("margin_db", "Margin (dB)"),
+                   ("polarization", "Polarization"), ("height_m", "Height (m)"),
+                   ("azimuth_deg", "Azimuth (°)"), ("status", "Status"), ("note", "Note"))
+_FINDING_COLUMNS = (("step_label", "Step"),) + _RESULT_COLUMNS[:-1]
 _MAX_EVENTS = 500
 
 
 def _file_text(entry: dict) -> str:
-    text = str(entry.get("path", ""))
-    return f"{text} (sha256 {entry['sha256']})" if entry.get("sha256") else text
+    name = Path(str(entry.get("path", ""))).name
+    return f"{name} (SHA-256 {entry['sha256'][:16]}…)" if entry.get("sha256") else name
 
 
-def _identity(manifest: dict) -> str:
+def _run_details(manifest: dict) -> str:
+    """Identity of the run, instruments, plan and the files as run (collapsed)."""
     seq, bench = manifest.get("sequence", {}), manifest.get("bench", {})
-    rows = [("sequence name", manifest.get("name")), ("created", manifest.get("created")),
-            ("state", manifest.get("state")), ("software", manifest.get("software")),
-            ("simulated bench", "yes" if manifest.get("simulated") else "no"),
-            ("sequence file", _file_text(seq)), ("bench file", _file_text(bench))]
-    rows += [(f"instrument: {k}", v) for k, v in manifest.get("instruments", {}).items()]
+    rows = [("Sequence", manifest.get("name")), ("Started (UTC)", manifest.get("created")),
+            ("State", manifest.get("state")), ("Software", manifest.get("software")),
+            ("Simulated bench", "yes" if manifest.get("simulated") else "no"),
+            ("Sequence file", _file_text(seq)), ("Bench file", _file_text(bench)),
+            ("Confirmation before motion", "skipped (--unattended)" if manifest.get("unattended") else "asked")]
+    rows += [(f"Instrument: {k}", v) for k, v in manifest.get("instruments", {}).items()]
     body = "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in rows)
+    plan = "".join(f"<li>{esc(line)}</li>" for line in manifest.get("plan") or [])
     files = "".join(f"<details><summary>{esc(name)} as run</summary><pre>{esc(e['text'])}</pre>"
-                    "</details>" for name, e in (("sequence", seq), ("bench file", bench))
+                    "</details>" for name, e in (("Sequence file", seq), ("Bench file", bench))
                     if e.get("text"))
-    return f"<table>{body}</table>{files}"
+    return (f"<h2>Run details</h2><details><summary>Identity, instruments and plan</summary>"
+            f"<table>{body}</table><h3>Plan</h3><ul>{plan}</ul></details>{files}")
 
 
-def _safety() -> str:
-    items = "".join(f"<li>{esc(c)}</li>" for c in SAFETY_CAUTIONS)
-    return f'<h2>Safety</h2><div class="safety"><ul>{items}</ul></div>'
-
-
-def _plan(manifest: dict) -> str:
-    plan = manifest.get("plan") or []
-    if not plan:
-        return "<h2>Plan</h2><p>No plan recorded.</p>"
-    return "<h2>Plan</h2><ul>" + "".join(f"<li>{esc(p)}</li>" for p in plan) + "</ul>"
+def _safety(manifest: dict) -> str:
+    roles = {role for role in ("stage", "mast", "turntable", "supply") if role in manifest.get("instruments", {})}
+    items = cautions_for(roles, analyzer_caution(manifest.get("analyzer_profile", "of this bench"),
+                                                 float(manifest.get("analyzer_damage_dbm", 30.0))))
+    return '<h2>Safety</h2><div class="safety"><ul>' + "".join(f"<li>{esc(c)}</li>" for c in items) + "</ul></div>"
 
 
 def _warnings_html(warnings: list[str]) -> str:
@@ -78,10 +69,11 @@ class StepWriter:
     """Collects one step's section: pictures in ``plots/``, HTML parts, warnings.
 
     Step kinds call its helpers from their ``report_section``; the writer knows nothing of
-    any kind.
+    any kind. ``shared`` collects what the page shows once for all steps: the transducer
+    chains and the pictures drawn (older pictures are removed).
     """
 
-    def __init__(self, run, info: dict, views: "MapViews | None" = None) -> None:
+    def __init__(self, run, info: dict, views: "MapViews | None" = None, shared: dict | None = None) -> None:
         self.run = run
         self.info = info
         self.views = views or MapViews()
@@ -90,11 +82,15 @@ class StepWriter:
         self.plots_dir = Path(run.folder) / "plots"
         self.warnings: list[str] = []
         self.parts: list[str] = []
+        self.key_parts: list[str] = []
+        self.shared = shared if shared is not None else {"chains": {}, "drawn": set()}
         self._spectrum = None
 
     def png(self, suffix: str) -> Path:
-        """Path of one of the step's pictures."""
-        return self.plots_dir / f"{safe_name(self.label)}-{suffix}.png"
+        """Path of one of the step's pictures (remembered as drawn by this report)."""
+        path = self.plots_dir / f"{safe_name(self.label)}-{suffix}.png"
+        self.shared["drawn"].add(path.name)
+        return path
 
     def attempt(self, what: str, fn):
         """``fn()``, or None with a warning on the page when it raises a BenchError."""
@@ -118,22 +114,30 @@ class StepWriter:
         return self._spectrum
 
     def render(self) -> str:
+        kind = KINDS.get(self.kind)
         title = f"Step {self.label} ({self.kind})"
         if not self.has_traces() and self.results().empty:
             return f"<h2>{esc(title)}</h2><p>No data: the run did not reach this step.</p>"
-        kind = KINDS.get(self.kind)
         if kind is None:
             self.warnings.append(f"unknown step kind {self.kind!r}: drawn as a plain sweep")
             kind = KINDS["sweep"]
         kind.report_section(self)
-        return (f"<h2>{esc(title)}</h2>{self._settings()}{_warnings_html(self.warnings)}"
-                + "".join(self.parts))
+        self._pick_key_picture(kind)
+        return (f'<h2 id="step-{esc(safe_name(self.label))}">{esc(title)}</h2>{self._settings()}'
+                f"{_warnings_html(self.warnings)}" + "".join(self.parts))
+
+    def _pick_key_picture(self, kind) -> None:
+        """A step compared with a limit, or a near-field map: its first picture goes to the top."""
+        if not (self.info.get("limit") or not kind.far_field):
+            return
+        first = next((i for i, part in enumerate(self.parts) if part.startswith("<img")), None)
+        if first is not None:
+            self.key_parts.append(self.parts[first])
+            self.parts[first] = (f'<p><a href="#key-{esc(safe_name(self.label))}">The picture of this step '
+                                 "is at the top of the report.</a></p>")
 
     def _settings(self) -> str:
-        keys = ("sweep", "limit", "distance_m", "unit", "ambient", "probe", "probe_kind",
-                "margin_db")
-        items = [f"{k} = {self.info[k]}" for k in keys if k in self.info]
-        return f"<p>{esc('; '.join(items))}</p>" if items else ""
+        return f'<p class="settings">{esc(settings_text(self.info))}</p>'
 
     def spectrum_picture(self, spectrum, marks) -> None:
         """The spectrum with its limit line, the ambient overlay and the marked frequencies."""
@@ -159,18 +163,66 @@ class StepWriter:
         return None if amb is None else (amb.freq_hz, amb.level)
 
     def results_table(self, results: pd.DataFrame, unit: str) -> None:
-        """The step's result rows (suspects, readings) with their margins."""
-        unit_text = runview.UNIT_TEXT.get(unit, unit)
+        """The step's result rows (suspects, readings) with their margins, collapsed."""
         table = results.sort_values("freq_hz")
-        self.parts.append(f"<h3>Results ({len(table)} frequencies, levels in "
-                          f"{esc(unit_text)})</h3>")
-        self.parts.append(html_table(table, _RESULT_COLUMNS, row_class="status", formats={
-            "freq_hz": mhz, "level": ".2f", "limit_level": ".2f", "margin_db": ".2f",
-            "height_m": ".2f", "azimuth_deg": ".0f"}))
+        counts = table["status"].value_counts()
+        said = ", ".join(f"{n} {k}" for k, n in counts.items())
+        self.parts.append(f"<details><summary>All readings of this step ({len(table)}: {esc(said)})"
+                          "</summary>" + html_table(table, _columns(_RESULT_COLUMNS, unit), row_class="status",
+                                                    formats=_FORMATS) + "</details>")
 
     def chain_block(self, spectrum) -> None:
-        """The transducer chain the levels went through."""
-        self.parts.append(f"<h3>Transducer chain</h3><pre>{esc(spectrum.chain_text)}</pre>")
+        """The transducer chain the levels went through: listed once for the whole report."""
+        labels = self.shared["chains"].setdefault(spectrum.chain_text, [])
+        labels.append(self.label)
+        number = list(self.shared["chains"]).index(spectrum.chain_text) + 1
+        self.parts.append(f'<p>Levels in {esc(UNIT_TEXT.get(spectrum.unit, spectrum.unit))}, corrected '
+                          f'through <a href="#chains">transducer chain {number}</a>.</p>')
+
+
+_FORMATS = {"freq_hz": mhz, "level": ".1f", "limit_level": ".1f", "margin_db": "+.1f",
+            "height_m": ".2f", "azimuth_deg": ".0f"}
+
+
+def _columns(columns, unit: str):
+    text = UNIT_TEXT.get(unit, unit) or "dB"
+    return tuple((c, h.format(unit=text)) for c, h in columns)
+
+
+def _hz(value: float) -> str:
+    from bench.units import format_hz
+
+    return format_hz(float(value))
+
+
+def settings_text(info: dict) -> str:
+    """A step's settings in plain words: span, RBW, detector, trace, positions, limit."""
+    st = info.get("settings") or {}
+    words = []
+    if st:
+        words.append(f"{_hz(st['start_hz'])} to {_hz(st['stop_hz'])}, RBW {_hz(st['rbw_hz'])}"
+                     + (f", VBW {_hz(st['vbw_hz'])}" if st.get("vbw_hz") else "")
+                     + f", {st.get('detector', 'peak')} detector")
+        trace = st.get("trace", "clear-write")
+        words.append(trace if trace == "clear-write" else f"{trace} of {st.get('count', 1)} sweeps")
+        if st.get("dwell_s"):
+            words.append(f"dwell {st['dwell_s']:g} s")
+    if info.get("positions"):
+        words.append(f"{info['positions']} position{'s' if info['positions'] != 1 else ''} × "
+                     f"{info.get('points_per_position', '?')} points")
+    if info.get("limit"):
+        words.append(f"limit {Path(str(info['limit'])).stem}")
+    if info.get("distance_m") is not None:
+        words.append(f"antenna at {float(info['distance_m']):g} m")
+    if info.get("probe"):
+        words.append(f"probe {info['probe']} ({info.get('probe_kind', '')})")
+    if info.get("margin_db") is not None:
+        words.append(f"suspects within {float(info['margin_db']):g} dB of the limit")
+    if info.get("ambient"):
+        words.append(f"ambient reference: step {info['ambient']}")
+    if info.get("of"):
+        words.append(f"remeasures the suspects of step {info['of']}")
+    return "; ".join(words)
 
 
 def _events(run) -> str:
@@ -182,8 +234,8 @@ def _events(run) -> str:
                      for t in shown["t_wall"]]
     note = (f"<p>Showing the last {_MAX_EVENTS} of {len(events)} events.</p>"
             if len(events) > _MAX_EVENTS else "")
-    table = html_table(shown, (("time", "time (UTC)"), ("level", "level"), ("text", "event")))
-    return f"<h2>Events</h2>{note}{table}"
+    table = html_table(shown, (("time", "Time (UTC)"), ("level", "Level"), ("text", "Event")))
+    return f"<h2>Events</h2><details><summary>{len(events)} events</summary>{note}{table}</details>"
 
 
 @dataclass(frozen=True)
@@ -228,19 +280,72 @@ def write_report(run, views: MapViews | None = None) -> Path:
 
 def _write_report(run, views: MapViews | None) -> Path:
     manifest = run.manifest()
-    (Path(run.folder) / "plots").mkdir(exist_ok=True)
-    name = manifest.get("name", Path(run.folder).name)
-    parts = [f"<h1>Pre-scan report: {esc(name)}</h1>",
-             f'<div class="notice">{esc(DISCLAIMER)}</div>',
-             "<h2>Run</h2>", _identity(manifest)]
-    if manifest.get("state") != "complete":
-        parts.append(f'<p class="warn">This run is {esc(manifest.get("state", "unknown"))}: '
-                     "steps after the interruption have no data.</p>")
-    parts += [_safety(), _plan(manifest)]
-    for info in manifest.get("steps", []):
-        parts.append(StepWriter(run, info, views).render())
-    parts.append(_events(run))
-    parts.append(f'<div class="notice">{esc(DISCLAIMER)}</div>')
+    plots_dir = Path(run.folder) / "plots"
+    plots_dir.mkdir(exist_ok=True)
+    shared = {"chains": {}, "drawn": set()}
+    writers = [StepWriter(run, info, views, shared) for info in manifest.get("steps", [])]
+    sections = [w.render() for w in writers]
+    title = _title(manifest)
+    parts = [f"<h1>{esc(title)}</h1>", _subtitle(manifest), _verdict(run, manifest),
+             f'<div class="notice">{esc(DISCLAIMER)}</div>', _key_pictures(writers), _safety(manifest),
+             *sections, _chains(shared["chains"]), _run_details(manifest), _events(run),
+             f'<div class="notice">{esc(DISCLAIMER)}</div>']
     out = Path(run.folder) / "report.html"
-    out.write_text(page(f"Pre-scan report: {name}", "".join(parts)), encoding="utf-8")
+    out.write_text(page(title, "".join(parts)), encoding="utf-8")
+    for old in plots_dir.glob("*.png"):  # pictures an earlier report drew and this one did not
+        if old.name not in shared["drawn"]:
+            old.unlink()
     return out
+
+
+def _title(manifest: dict) -> str:
+    eut = manifest.get("eut") or {}
+    if not eut:
+        return f"Pre-scan report: {manifest.get('name', '')}"
+    text = eut["name"] + (f" rev {eut['revision']}" if eut.get("revision") else "")
+    return f"Pre-scan report: {text}" + (f", serial {eut['serial']}" if eut.get("serial") else "")
+
+
+def _subtitle(manifest: dict) -> str:
+    bits = [f"sequence {manifest.get('name', '')}", f"started {manifest.get('created', '')} UTC",
+            f"state {manifest.get('state', '')}"]
+    sim = manifest.get("simulator")
+    if manifest.get("simulated"):
+        bits.append("simulated bench" + ("" if sim and sim.get("realtime") else
+                                         " (accelerated clock: the run took seconds; the plan's times are a real "
+                                         "bench's)"))
+    notes = (manifest.get("eut") or {}).get("notes")
+    text = f'<p class="subtitle">{esc(" · ".join(bits))}</p>'
+    if manifest.get("state") != "complete":
+        text += (f'<p class="warn">This run is {esc(manifest.get("state", "unknown"))}: steps after '
+                 "the interruption have no data.</p>")
+    return text + (f"<p>Board notes: {esc(notes)}</p>" if notes else "")
+
+
+def _verdict(run, manifest: dict) -> str:
+    remeasured = {s["of"]: s["label"] for s in manifest.get("steps", []) if s.get("of")}
+    verdict = verdict_of(run.results(), remeasured)
+    box = f'<div class="verdict {esc(verdict.status.lower().replace(" ", "-"))}">{esc(verdict.line())}</div>'
+    if verdict.findings.empty:
+        return box
+    shown = verdict.findings.head(10)
+    units = set(shown["unit"])
+    columns = _columns(_FINDING_COLUMNS, units.pop() if len(units) == 1 else "")
+    return (box + f"<h2>Worst findings ({len(shown)} of {len(verdict.findings)} frequencies)</h2>"
+            + html_table(shown, columns, row_class="status", formats=_FORMATS))
+
+
+def _key_pictures(writers) -> str:
+    parts = []
+    for w in writers:
+        for picture in w.key_parts:
+            parts.append(f'<h3 id="key-{esc(safe_name(w.label))}">{esc(w.label)}</h3>{picture}')
+    return "<h2>Pictures that matter</h2>" + "".join(parts) if parts else ""
+
+
+def _chains(chains: dict) -> str:
+    if not chains:
+        return ""
+    items = "".join(f"<h3>Chain {n} (steps {esc(', '.join(labels))})</h3><pre class=\"wrap\">{esc(text)}</pre>"
+                    for n, (text, labels) in enumerate(chains.items(), start=1))
+    return f'<h2 id="chains">Transducer chains</h2>{items}'

@@ -60,6 +60,10 @@ def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, 
         "steps": steps,
         "files": session.used_files(),
     }
+    analyzer = session.profiles.get("analyzer")
+    if analyzer is not None:
+        manifest["analyzer_profile"] = analyzer.name
+        manifest["analyzer_damage_dbm"] = float(analyzer.damage_level_dbm)
     if session.sequence.eut is not None:
         manifest["eut"] = session.sequence.eut.model_dump(exclude_none=True)
     if session.sim_settings is not None:
@@ -81,7 +85,12 @@ def _manifest_step(session, step, copies: dict, limit_entry) -> dict:
         name = copies.setdefault(src, f"{len(copies):02d}-{src.name}")
         chain.append({"role": role, "file": f"tables/{name}"})
     entry = {"label": step.label, "kind": step.kind, "unit": unit, "chain": chain, **extra,
-             **kind.manifest_entry(session.sequence, step)}
+             **kind.manifest_entry(session.sequence, step),
+             "settings": session.sequence.sweep_of(step).model_dump(exclude_none=True)}
+    summary = next((st for st in session.plan.steps if st.label == step.label), None)
+    if summary is not None and not summary.dynamic:
+        entry["positions"] = summary.actions
+        entry["points_per_position"] = summary.points_per_action
     limit = kind.limit_name(session.sequence, step)
     if limit is not None:
         entry["limit"] = limit_entry(limit)

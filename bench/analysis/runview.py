@@ -9,7 +9,7 @@ corrections the same way.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -105,7 +105,8 @@ def step_chain(run, label: str) -> TransducerChain | None:
         path = Path(entry["file"])
         if not path.is_absolute():
             path = Path(run.folder) / path
-        tables.append(load_table(path, role=entry.get("role")))
+        # named as the run folder names it (tables/...), not by where the folder lies today
+        tables.append(replace(load_table(path, role=entry.get("role")), origin=str(entry["file"])))
     return TransducerChain(tuple(tables))
 
 

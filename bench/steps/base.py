@@ -217,7 +217,7 @@ class StepKind:
         spectrum = writer.spectrum()
         results = writer.results()
         if spectrum is not None:
-            marks = results[["freq_hz", "level", "status"]].dropna(subset=["level"]) \
+            marks = results[["freq_hz", "level", "status", "margin_db"]].dropna(subset=["level"]) \
                 if not results.empty else None
             writer.spectrum_picture(spectrum, marks)
         if not results.empty:

@@ -168,6 +168,9 @@ class FinalKind(StepKind):
     def instruments(self, step: FinalStep) -> set[str]:
         return {"mast", "turntable"}
 
+    def report_section(self, writer) -> None:
+        _report_section(writer)
+
     def run_dynamic(self, ctx, step: FinalStep, measurer) -> list[dict]:
         from bench.steps.prescan import far_context
 
@@ -329,3 +332,56 @@ def _best_of(measurer, seg, f0, rbw_hz, poses, key):
         if level > best_level:
             best, best_level = key(pose), level
     return best
+
+
+# --------------------------------------------------------------------------- report
+
+
+#: Zoom pictures drawn per final step (the worst suspects first); the table lists the rest.
+MAX_ZOOM_PICTURES = 12
+
+
+def _report_section(writer) -> None:
+    """One picture per suspect: its zoom trace, its readings and the limit; then the readings."""
+    from bench.analysis import runview
+
+    results = writer.results()
+    if results.empty:
+        return
+    chain = writer.attempt("transducer chain", lambda: runview.step_chain(writer.run, writer.label))
+    limit = writer.attempt("limit", lambda: runview.step_limit(writer.run, writer.label))
+    zooms = _zoom_traces(writer.run, writer.label)
+    decided = results.dropna(subset=["margin_db"]).sort_values("margin_db", kind="stable")
+    order = list(dict.fromkeys(decided["freq_hz"])) + [f for f in dict.fromkeys(results["freq_hz"])
+                                                        if f not in set(decided["freq_hz"])]
+    for rank, freq in enumerate(order[:MAX_ZOOM_PICTURES], start=1):
+        trace = next(((f, v) for f, v in zooms if f[0] <= freq <= f[-1]), None)
+        if trace is not None:
+            _zoom_picture(writer, rank, freq, trace, chain, limit, results[results["freq_hz"] == freq])
+    if len(order) > MAX_ZOOM_PICTURES:
+        writer.parts.append(f"<p>{len(order) - MAX_ZOOM_PICTURES} more suspects are in the table below.</p>")
+    unit = str(results["unit"].iloc[0])
+    writer.results_table(results, unit)
+
+
+def _zoom_traces(run, label: str) -> list:
+    """The narrow-span traces of a final step (one per suspect, in measuring order)."""
+    meta = run.traces(label)
+    zoom = meta[meta["stop_hz"] > meta["start_hz"]]
+    return [run.trace(int(tid)) for tid in zoom["id"]]
+
+
+def _zoom_picture(writer, rank: int, freq: float, trace, chain, limit, rows) -> None:
+    from bench import plots
+    from bench.htmlkit import embed_png
+
+    f, raw = trace
+    level = raw if chain is None else chain.correct(f, raw)
+    worst = rows.dropna(subset=["margin_db"]).sort_values("margin_db").head(1)
+    said = (f", worst margin {float(worst['margin_db'].iloc[0]):+.1f} dB ({worst['detector'].iloc[0]})"
+            if len(worst) else "")
+    marks = rows[["freq_hz", "level", "status", "margin_db"]].assign(status=rows["detector"] + ": " + rows["status"])
+    path = plots.spectrum_png(writer.png(f"zoom-{rank}"), f, level, unit=str(rows["unit"].iloc[0]),
+                              title=f"{writer.label}: {freq / 1e6:.3f} MHz{said}", limits=limit,
+                              suspects=marks, log_freq=False, label_worst=1)
+    writer.parts.append(embed_png(path, f"zoom on {freq / 1e6:.3f} MHz"))
