@@ -244,9 +244,34 @@ def report(folder: Path, *, map_peaks: int = 3, map_freqs_hz: tuple = (), map_ba
     views = MapViews(peaks=map_peaks, freqs_hz=tuple(map_freqs_hz), bands_hz=tuple(map_bands_hz))
     run = open_run(folder)
     try:
+        _check_map_views(run, views)
         return write_report(run, views)
     finally:
         run.close()
+
+
+def _check_map_views(run, views) -> None:
+    """Maps asked for must lie inside a near-field grid sweep of the run (else one line, exit 2)."""
+    from bench.analysis.runview import step_span_hz
+    from bench.steps import KINDS
+    from bench.units import format_hz
+
+    if not views.freqs_hz and not views.bands_hz:
+        return
+    option = "--map-at" if views.freqs_hz else "--map-band"
+    grids = [s["label"] for s in run.manifest().get("steps", [])
+             if s.get("kind") in KINDS and not KINDS[s["kind"]].far_field and not run.traces(s["label"]).empty]
+    if not grids:
+        raise ConfigError(f"{run.folder}: expected a run with a measured near-field grid step to map, "
+                          "found none (maps are drawn from grid scans only)", key=option)
+    spans = [step_span_hz(run, label) for label in grids]
+    text = ", ".join(dict.fromkeys(f"{format_hz(lo)} to {format_hz(hi)}" for lo, hi in spans))
+    wanted = [("--map-at", f, f) for f in views.freqs_hz] + [("--map-band", lo, hi) for lo, hi in views.bands_hz]
+    for key, lo, hi in wanted:
+        if not any(a <= hi and lo <= b for a, b in spans):
+            found = format_hz(lo) if lo == hi else f"{format_hz(lo)} to {format_hz(hi)}"
+            raise ConfigError(f"expected a frequency inside a grid sweep of this run ({text}), found {found}",
+                              key=key)
 
 
 def serve_simulator(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False,
@@ -287,20 +312,12 @@ def outcome(folder: Path) -> Outcome:
 
 def export(folder: Path, csv_dir: Path, *, parquet: bool = False) -> list[Path]:
     """CSV (and Parquet) files of a run for other tools; returns the files written."""
+    from bench.export import export_run
     from bench.store import open_run
 
     run = open_run(folder)
     try:
-        files = run.export_csv(csv_dir)
-        if parquet:
-            try:
-                import pyarrow  # noqa: F401
-            except ImportError as exc:
-                raise ConfigError("--parquet needs pyarrow: pip install 'emission-bench[parquet]'") from exc
-            path = Path(csv_dir) / "traces.parquet"
-            run.traces().to_parquet(path, index=False)
-            files.append(path)
-        return files
+        return export_run(run, csv_dir, parquet=parquet)
     finally:
         run.close()
 

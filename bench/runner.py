@@ -198,7 +198,7 @@ def _execute(session, store: RunStore, station=None) -> None:
         executor.station = station
         executor.identities.update(station.identities)
     runlog = _RunLog(store.folder)
-    hint = f"'bench resume {store.folder}'"  # the manifest holds the bench, board and seed
+    hint = f"'emission-bench resume {store.folder}'"  # the manifest holds the bench, board and seed
     try:
         executor.run()
     except KeyboardInterrupt:

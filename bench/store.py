@@ -388,7 +388,7 @@ class RunStore:
         meta.to_csv(path, index=False)
         written.append(path)
         for label, group in meta.groupby("step_label", sort=False):
-            path = out_dir / f"spectra-{label}.csv"
+            path = out_dir / f"spectra-{_file_label(label)}.csv"
             with open(path, "w", encoding="utf-8") as fh:
                 fh.write("trace_id,freq_hz,level\n")
                 for tid, unit in zip(group["id"], group["unit"]):
@@ -402,6 +402,13 @@ class RunStore:
             res.to_csv(path, index=False)
             written.append(path)
         return written
+
+
+def _file_label(label: str) -> str:
+    """A step label safe as part of a file name (a hand-edited manifest may hold anything)."""
+    import re
+
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", str(label)).strip("._") or "step"
 
 
 def create_run(root: Path, name: str, manifest: dict) -> RunStore:

@@ -56,7 +56,7 @@ GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
                 "bench.executor", "bench.runner", "bench.progress"),
                ("steps", "planning", "drivers", "protocol", "store", "analysis", "files",
                 *LEAVES)),
-    "outputs": (("bench.report", "bench.compare"),
+    "outputs": (("bench.report", "bench.compare", "bench.export"),
                 ("steps", "output helpers", "store", "analysis", "files", *LEAVES)),
     "sim": (("bench.sim.*",),
             ("errors", "units", "physics", "bench.tomlsource", "bench.ieee488")),

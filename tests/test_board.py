@@ -46,7 +46,7 @@ def test_malformed_board_is_exit_code_2_and_writes_nothing(tmp_path, capsys):
                  "--board", str(MALFORMED / "board-unknown-key.toml"), "--out", str(tmp_path / "runs")])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
-    assert err == [f"bench: {MALFORMED / 'board-unknown-key.toml'}:19: emitters[0].loop_aera: "
+    assert err == [f"emission-bench: {MALFORMED / 'board-unknown-key.toml'}:19: emitters[0].loop_aera: "
                    "unknown key 'loop_aera' (did you mean 'loop_area'?)"]
     assert not (tmp_path / "runs").exists()
 

@@ -136,7 +136,7 @@ def test_bad_sequence_is_one_line_and_writes_nothing(tmp_path, capsys):
     code = main(["run", str(seq), "--sim", "--out", str(tmp_path / "runs")])
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2
-    assert err == [f'bench: {seq}:7: sweeps.cd.rbw: expected a frequency like "120 kHz", found the bare '
+    assert err == [f'emission-bench: {seq}:7: sweeps.cd.rbw: expected a frequency like "120 kHz", found the bare '
                    'number 120000 (write the unit, in quotes)']
     assert not (tmp_path / "runs").exists()
 

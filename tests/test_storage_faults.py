@@ -34,7 +34,7 @@ def test_a_full_disk_stops_the_run_with_one_line_and_keeps_it_resumable(tmp_path
     assert proc.returncode == 1
     assert "Traceback" not in proc.stderr
     last = proc.stderr.strip().splitlines()[-1]
-    assert last.startswith("bench: ") and "cannot store trace" in last and "bench resume" in last
+    assert last.startswith("emission-bench: ") and "cannot store trace" in last and "bench resume" in last
     (folder,) = list((tmp_path / "runs").iterdir())
     assert not list(folder.glob("*.tmp")) and not (folder / "run.lock").exists()
     run = open_run(folder)

@@ -28,7 +28,9 @@ def _seed(text: str) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="bench", description="Radiated-emission pre-scans on a bench or a simulated bench.")
+    p = argparse.ArgumentParser(prog="emission-bench",
+                                description="Radiated-emission pre-scans on a bench or a simulated bench "
+                                            "(the short alias 'bench' runs the same program).")
     p.add_argument("-v", "--verbose", action="store_true", help="more detail (all validation errors, debug log)")
     sub = p.add_subparsers(dest="verb", required=True, metavar="VERB")
 
@@ -161,13 +163,13 @@ def main(argv: list[str] | None = None) -> int:
     try:
         return int(VERBS[args.verb](args) or 0)
     except BenchError as exc:
-        print(f"bench: {exc}", file=sys.stderr)
+        print(f"emission-bench: {exc}", file=sys.stderr)
         if args.verbose:
             for extra in getattr(exc, "all_errors", ())[1:]:
                 print(f"  also: {extra}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
-        print("bench: stopped by the operator", file=sys.stderr)
+        print("emission-bench: stopped by the operator", file=sys.stderr)
         return 130
     except BrokenPipeError:
         # the reader went away (`bench info | head`): stop quietly, as a pipe-aware tool does
