@@ -18,7 +18,7 @@ from bench.errors import ConfigError, PlanError
 ESTIMATE = ("This pre-scan is an estimate, not a compliance verdict: defer to the applicable standard, "
             "an accredited test house and local regulations.")
 
-__all__ = ["ESTIMATE", "unit_text", "prepare_resume", "BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report", "serve_simulator",
+__all__ = ["ESTIMATE", "unit_text", "limit_lines", "prepare_resume", "BenchOptions", "demo_bench_path", "prepare", "run_sequence", "resume", "report", "serve_simulator",
            "export", "compare", "identify", "info", "outcome", "Outcome", "banner", "cautions",
            "to_confirm"]
 
@@ -358,6 +358,18 @@ def info() -> dict:
     return {"software": f"emission-bench {__version__}", "python": sys.version.split()[0],
             "versions": versions, "profiles": builtin_profiles(), "limits": _limit_names(),
             "transports": _transports()}
+
+
+def limit_lines(name_or_path: str) -> dict:
+    """A limit set as plain data: name, title, source, quantity, distance, lines and segments (Hz)."""
+    from bench.analysis.limits import load_limit
+
+    limit = load_limit(name_or_path)
+    lines = [{"detector": line.detector, "clause": line.clause,
+              "segments": [(seg.start_hz, seg.stop_hz, seg.start_level, seg.stop_level) for seg in line.segments]}
+             for line in limit.lines]
+    return {"name": limit.name, "title": limit.title, "source": limit.source, "quantity": limit.quantity,
+            "distance_m": limit.distance_m, "lines": lines, "notes": limit.notes}
 
 
 def _limit_names() -> list[str] | str:

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import re
 import shutil
 from importlib import resources
 from pathlib import Path
 
 import pandas as pd
+import pytest
 
 from bench.analysis.verdict import verdict_of
 from bench.cli import main
@@ -84,3 +86,65 @@ def test_a_real_run_without_a_terminal_asks_for_unattended(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "127.0.0.1" in err[0]
     assert not (tmp_path / "runs").exists()
+
+
+FAR_SMALL = """
+schema = 1
+name = "out-far"
+[sweeps.cd]
+start = "30 MHz"
+stop = "300 MHz"
+rbw = "120 kHz"
+[[steps]]
+kind = "prescan"
+label = "prescan"
+sweep = "cd"
+heights = { from = "1 m", to = "1 m", step = "1 m" }
+polarizations = ["horizontal", "vertical"]
+azimuths = { from = "0 deg", to = "0 deg", step = "90 deg" }
+limit = "cispr32-class-b-3m"
+"""
+
+
+def _far_run(tmp_path: Path) -> Path:
+    seq = tmp_path / "far.toml"
+    seq.write_text(FAR_SMALL, encoding="utf-8")
+    assert main(["run", str(seq), "--sim", "--no-plots", "--out", str(tmp_path / "runs")]) == 0
+    (folder,) = (tmp_path / "runs").iterdir()
+    return folder
+
+
+def test_maps_are_refused_where_there_is_nothing_to_map(tmp_path, capsys):
+    folder = _far_run(tmp_path)
+    capsys.readouterr()
+    assert main(["report", str(folder), "--map-at", "100 MHz"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--map-at" in err[0] and "grid step to map, found none" in err[0]
+
+
+def test_export_names_columns_with_units_and_corrects_each_reading(tmp_path, capsys):
+    folder = _far_run(tmp_path)
+    capsys.readouterr()
+    assert main(["export", str(folder), "--csv", str(tmp_path / "csv"), "--parquet"]) == 0
+    out = capsys.readouterr().out
+    assert "spectra-prescan.csv" in out and "spectra.parquet" in out
+    spectra = pd.read_csv(tmp_path / "csv" / "spectra-prescan.csv")
+    assert list(spectra.columns) == ["Trace", "Frequency (Hz)", "Reading (dBµV)", "Level (dBµV/m)"]
+    # corrected = reading + antenna factor + cable loss - preamp gain (the demo bench's chain);
+    # at 30 MHz the demo antenna factor is 20 log10(30) - (-9 dBi) - 29.774 = 8.77 dB/m (demo table)
+    first = spectra.iloc[0]
+    assert first["Frequency (Hz)"] == pytest.approx(30e6)
+    assert first["Level (dBµV/m)"] - first["Reading (dBµV)"] == pytest.approx(8.77 + 0.29 - 30.0, abs=0.6)
+    results = pd.read_csv(tmp_path / "csv" / "results.csv")
+    assert {"Level (dBµV/m)", "Limit (dBµV/m)", "Margin (dB)"} <= set(results.columns)
+    long = pd.read_parquet(tmp_path / "csv" / "spectra.parquet")
+    assert {"freq_hz", "reading_dbuv", "level", "unit"} <= set(long.columns) and len(long) == 2 * 4501  # 270 MHz / (RBW/2) + 1 points
+
+
+def test_info_prints_a_limit_with_its_source(capsys):
+    assert main(["info", "--limit", "cispr32-class-b-3m"]) == 0
+    out = capsys.readouterr().out
+    assert "source: CISPR 32" in out
+    # CISPR 32 Table A.4 (class B, 3 m): 40 dBuV/m from 30 to 230 MHz, 47 dBuV/m to 1 GHz
+    assert re.search(r"30\.000 MHz to\s+230\.000 MHz\s+40\.0 dBµV/m", out)
+    assert re.search(r"230\.000 MHz to\s+1000\.000 MHz\s+47\.0 dBµV/m", out)

@@ -93,7 +93,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("instruments", help="ask every instrument of a bench file for its identity")
     bench_args(sp)
 
-    sub.add_parser("info", help="versions, profiles, limit lines, transports and what is unavailable")
+    sp = sub.add_parser("info", help="versions, profiles, limit lines, transports and what is unavailable")
+    sp.add_argument("--limit", metavar="NAME_OR_FILE", help="print one limit line set with its source")
     return p
 
 

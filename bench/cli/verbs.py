@@ -169,7 +169,27 @@ def cmd_instruments(args) -> int:
     return 1 if failures else 0
 
 
+def cmd_limit(name: str) -> int:
+    """``info --limit NAME``: every segment of a limit set, its clause and its source."""
+    limit = app.limit_lines(name)
+    unit = app.unit_text(limit["quantity"])
+    print(f"{limit['title']} ({limit['name']})")
+    print(f"  source: {limit['source']}")
+    if limit["distance_m"] is not None:
+        print(f"  test distance: {limit['distance_m']:g} m")
+    for line in limit["lines"]:
+        print(f"  {line['detector']} ({line['clause'] or 'no clause given'}):")
+        for lo, hi, start, stop in line["segments"]:
+            level = f"{start:.1f} {unit}" if start == stop else f"{start:.1f} to {stop:.1f} {unit} (linear in log f)"
+            print(f"    {lo / 1e6:10.3f} MHz to {hi / 1e6:10.3f} MHz   {level}")
+    if limit["notes"]:
+        print(f"  notes: {limit['notes']}")
+    return 0
+
+
 def cmd_info(args) -> int:
+    if getattr(args, "limit", None):
+        return cmd_limit(args.limit)
     facts = app.info()
     print(f"{facts['software']}, Python {facts['python']}")
     for dist, version in facts["versions"].items():
