@@ -12,7 +12,8 @@ Sequence file::
     azimuth_search = { half_width = "30 deg", step = "15 deg" }   # optional
     height_search = { half_width = "0.5 m", step = "0.25 m" }     # optional
 
-For each suspect that is not ambient: re-centre in a narrow slow sweep, search azimuth then
+For each suspect that is not ambient: re-centre on it (a zoom around it, max-hold over the
+dwell, then the peak refined by interpolation), search azimuth then
 height around the prescan maximum in zero span with the dwell (a swept peak detector can miss
 a bursty signal), then read the peak and every asked detector at the best pose and compare each
 reading with the limit line of its detector. How many suspects there are is decided by the
@@ -52,7 +53,8 @@ from bench.steps.fields import (
     StrictModel,
 )
 
-__all__ = ["AngleSearch", "HeightSearch", "FinalStep", "FinalKind", "LIMIT_DETECTOR", "run_finals"]
+__all__ = ["AngleSearch", "HeightSearch", "FinalStep", "FinalKind", "LIMIT_DETECTOR", "run_finals",
+           "peak_frequency_hz", "ZOOM_SWEEPS"]
 
 log = logging.getLogger("bench.steps.final")
 
@@ -207,17 +209,44 @@ def _num(value):
     return None if value is None or (isinstance(value, float) and np.isnan(value)) else float(value)
 
 
-def _narrow_segment(freq_hz: float, span_hz: float, rbw_hz: float, detector: str, points: int,
-                    sweep_time_s: float) -> Segment:
-    """A narrow span around a suspect to find its exact frequency.
+#: Sweeps of the zoom around a suspect, sharing its dwell: max-hold of many short sweeps catches
+#: an intermittent emission at more trace points than one slow sweep (each sweep draws anew
+#: whether a point falls inside a burst; common practice for bursty signals).
+ZOOM_SWEEPS = 20
 
-    The sweep is slowed to ``sweep_time_s`` so that every trace point dwells long enough to
-    catch an intermittent (burst) signal; a fast sweep would see a burst only by chance.
+
+def _zoom_segment(freq_hz: float, span_hz: float, rbw_hz: float, points: int, dwell_s: float) -> Segment:
+    """The zoom around a suspect: max-hold of :data:`ZOOM_SWEEPS` sweeps sharing ``dwell_s``.
+
+    The span is at least 10 RBW so the whole filter response and some floor are seen.
     """
     span = max(span_hz, 10.0 * rbw_hz)
+    sweep_s = dwell_s / ZOOM_SWEEPS
     return Segment(start_hz=freq_hz - span / 2, stop_hz=freq_hz + span / 2, points=points, rbw_hz=rbw_hz,
-                   vbw_hz=3.0 * rbw_hz, detector=detector, ref_level_dbm=None, attenuation_db=None,
-                   trace_mode="clear-write", count=1, est_sweep_time_s=sweep_time_s, sweep_time_s=sweep_time_s)
+                   vbw_hz=3.0 * rbw_hz, detector="peak", ref_level_dbm=None, attenuation_db=None,
+                   trace_mode="max-hold", count=ZOOM_SWEEPS, est_sweep_time_s=dwell_s, sweep_time_s=sweep_s)
+
+
+def peak_frequency_hz(freq_hz, level_db, near_hz: float, rbw_hz: float) -> float:
+    """Frequency of the strongest point within +-RBW of ``near_hz``, refined by a parabola.
+
+    A Gaussian RBW filter's response in dB is a parabola in frequency (its power response is
+    exp(-a f^2)), so the vertex of the parabola through the maximum and its two neighbours is
+    the line's frequency, to a fraction of the trace step; the offset is kept within half a step
+    (derived in docs/physics.md).
+    """
+    f = np.asarray(freq_hz, float)
+    v = np.asarray(level_db, float)
+    near = np.flatnonzero(np.abs(f - near_hz) <= rbw_hz)
+    if near.size == 0:
+        return float(near_hz)
+    i = int(near[np.argmax(v[near])])
+    if i == 0 or i == f.size - 1:
+        return float(f[i])
+    left, mid, right = v[i - 1], v[i], v[i + 1]
+    curvature = left - 2.0 * mid + right
+    offset = 0.0 if curvature >= 0 else float(np.clip(0.5 * (left - right) / curvature, -0.5, 0.5))
+    return float(f[i] + offset * (f[i + 1] - f[i - 1]) / 2.0)
 
 
 def _zero_span_segment(freq_hz: float, rbw_hz: float, detector: str, points: int, dwell_s: float) -> Segment:
@@ -238,9 +267,9 @@ def _near(measurer, seg: Segment, freq_hz: float, rbw_hz: float):
 
 
 def _locate(measurer, seg: Segment, freq_hz: float, rbw_hz: float) -> float:
-    """Frequency of the strongest point within +-RBW of ``freq_hz`` in a narrow-span sweep."""
-    f, v, near = _near(measurer, seg, freq_hz, rbw_hz)
-    return float(f[near][np.argmax(v[near])]) if near.any() else freq_hz
+    """The suspect's frequency from its zoom trace (stored with the action, shown in the report)."""
+    f, v = measurer.measure(seg)
+    return peak_frequency_hz(f, v, freq_hz, rbw_hz)
 
 
 def _read_at(measurer, seg: Segment, freq_hz: float, rbw_hz: float) -> float:
@@ -267,7 +296,7 @@ def _final_rows(measurer, step: FinalStep, sweep, ctx, f0: float, pose, limits, 
                 margin_db: float) -> list[dict]:
     """Re-centre, search, then read every detector at the best pose."""
     height, pol, azimuth = pose
-    peak_seg = _narrow_segment(f0, step.span_hz, sweep.rbw_hz, "peak", points, step.dwell_s)
+    peak_seg = _zoom_segment(f0, step.span_hz, sweep.rbw_hz, points, step.dwell_s)
     measurer.move_to(FarFieldPose(height, pol, azimuth))
     f_exact = _locate(measurer, peak_seg, f0, sweep.rbw_hz)
     # search in zero span with the dwell: a swept peak detector can miss a bursty signal
