@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from bench.planning import (AnalyzerCaps, BenchCaps, FarFieldPose, Plan, PlanState, StagePose,
                             scalloping_db, segment_sweep)
+from bench.errors import PlanError
 from bench.steps import kind_of
 from bench.units import format_hz
 
@@ -36,7 +37,13 @@ def make_plan(sequence, caps: BenchCaps) -> Plan:
     for index, step in enumerate(sequence.steps):
         first = len(state.actions)
         kind = kind_of(step)
-        note = kind.plan(state, sequence, index, step)
+        try:
+            note = kind.plan(state, sequence, index, step)
+        except PlanError as exc:
+            # name the step's line in the sequence file (the CLI turns the key path into a line)
+            if getattr(exc, "key_path", None) is None:
+                exc.key_path = ("steps", index)
+            raise
         measured = state.actions[first:]
         if kind.analyses:
             state.add_analysis(index, step)

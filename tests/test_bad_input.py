@@ -48,3 +48,14 @@ def test_a_closed_pipe_ends_quietly(tmp_path):
         err = proc.stderr.read().decode()
     proc.wait(timeout=60)
     assert "Traceback" not in err
+
+
+def test_a_pose_outside_the_mast_names_the_sequence_line(tmp_path, capsys):
+    text = (DEMO / "demo-far-field.toml").read_text(encoding="utf-8")
+    seq = tmp_path / "tall.toml"
+    seq.write_text(text.replace('heights = { from = "1 m", to = "4 m"', 'heights = { from = "1 m", to = "6 m"'),
+                   encoding="utf-8")
+    assert main(["check", str(seq), "--sim"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    line = next(n for n, t in enumerate(seq.read_text().splitlines(), start=1) if t.startswith("kind = \"prescan\"")) - 1
+    assert len(err) == 1 and f"{seq}:{line} " in err[0] and "expected antenna height within [1 m, 4 m]" in err[0]
