@@ -306,6 +306,17 @@ def test_wrong_level_unit(bad):
     assert "dBuV/m" in err.message
 
 
+def test_units_of_a_limit_file_are_case_sensitive(bad):
+    # SI Brochure (BIPM, 9th edition 2019), section 3: prefix symbols are case-sensitive
+    err = bad(GOOD.replace('level = "52 dBuV/m" }', 'level = "400 UV/m" }'))
+    assert "did you mean 400 uV/m?" in err.message
+    err = bad(GOOD.replace('level = "52 dBuV/m" }', 'level = "52 dbuv/m" }'))
+    assert "did you mean 52 dBuV/m?" in err.message
+    err = bad(GOOD.replace('to = "1 GHz"', 'to = "900 mHz"'))
+    assert err.key == "lines.quasi-peak.segments[1].to"
+    assert "found 900 mHz (millihertz); did you mean 900 MHz?" in err.message
+
+
 def test_bare_number_level_and_bare_frequency(bad):
     assert "bare number" in (bad(GOOD.replace('level = "52 dBuV/m" }', "level = 52 }")).message)
     err = bad(GOOD.replace('to = "1 GHz"', "to = 1000"))

@@ -73,10 +73,12 @@ __all__ = [
 DETECTORS = ("quasi-peak", "peak", "average")
 _FIELD_QUANTITIES = ("dbuv_per_m", "dbua_per_m")
 # Linear spellings accepted for a level, per quantity: unit -> factor to the dB reference unit.
+# Exact spellings: SI prefixes and unit symbols are case-sensitive (SI Brochure, BIPM, 9th
+# edition 2019, section 3), "u" standing for the micro sign (common practice).
 _LINEAR_UNITS = {
-    "dbuv_per_m": {"uv/m": 1.0, "µv/m": 1.0, "mv/m": 1e3, "v/m": 1e6},
-    "dbuv": {"uv": 1.0, "µv": 1.0, "mv": 1e3, "v": 1e6},
-    "dbua_per_m": {"ua/m": 1.0, "µa/m": 1.0, "ma/m": 1e3, "a/m": 1e6},
+    "dbuv_per_m": {"uV/m": 1.0, "µV/m": 1.0, "mV/m": 1e3, "V/m": 1e6},
+    "dbuv": {"uV": 1.0, "µV": 1.0, "mV": 1e3, "V": 1e6},
+    "dbua_per_m": {"uA/m": 1.0, "µA/m": 1.0, "mA/m": 1e3, "A/m": 1e6},
 }
 _LINEAR = re.compile(r"^\s*([-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S+)\s*$")
 _NAME = r"^[a-z0-9][a-z0-9._-]*$"
@@ -347,7 +349,7 @@ def near_field_warnings(distance_m: float, freq_hz, product_size_m: float | None
 # ----------------------------------------------------------------------------- file format
 
 
-_Frequency = quantity("frequency", positive=True)
+_Frequency = quantity("frequency", positive=True, radio=True)
 
 
 class _SegmentModel(BaseModel):
@@ -383,10 +385,18 @@ def _parse_level(text: Any, quantity_name: str) -> float:
         return units.parse(text, quantity_name)
     except UnitError:
         match = _LINEAR.match(text) if isinstance(text, str) else None
-        factor = match and _LINEAR_UNITS[quantity_name].get(match.group(2).lower())
-        if not factor or float(match.group(1)) <= 0:
+        if not match:
             raise
-        return 20.0 * math.log10(float(match.group(1)) * factor)
+        number, unit = match.group(1), match.group(2)
+        factor = _LINEAR_UNITS[quantity_name].get(unit)
+        meant = units.case_suggestion(unit, _LINEAR_UNITS[quantity_name])
+        if factor is None and meant is not None:
+            raise UnitError(f"expected a level like {units.DIMENSIONS[quantity_name]}, found "
+                            f"{text.strip()}; did you mean {number} {meant}? (unit symbols and "
+                            "SI prefixes are case-sensitive)") from None
+        if not factor or float(number) <= 0:
+            raise
+        return 20.0 * math.log10(float(number) * factor)
 
 
 #: Plausible limit levels, dB above the quantity's reference: every radiated and conducted

@@ -379,7 +379,7 @@ def table_from_mapping(mapping: Mapping, *, base_dir: str | Path | None = None,
 def _inline_freq(data: dict, file: str | None, key: str | None) -> list[float]:
     if "freq" in data:
         try:
-            return [units.parse(v, "frequency") for v in data.pop("freq")]
+            return [units.parse(v, "frequency", radio=True) for v in data.pop("freq")]
         except UnitError as exc:
             raise ConfigError(exc.message, file=file, key=f"{key}.freq" if key else "freq") \
                 from None

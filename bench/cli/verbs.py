@@ -118,7 +118,7 @@ def cmd_report(args) -> int:
 
     def freq(text: str, option: str) -> float:
         try:
-            return units.parse(text, "frequency")
+            return units.parse(text, "frequency", radio=True)
         except ConfigError as exc:
             raise ConfigError(exc.message, key=option) from None
 
