@@ -133,7 +133,10 @@ def cmd_report(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    print(app.compare(args.before, args.after, out=args.out))
+    result = app.compare(args.before, args.after, out=args.out)
+    for line in result.lines():  # the summary at the top of the page, the same text
+        print(line)
+    print(result.path)
     return 0
 
 

@@ -266,7 +266,7 @@ class GridKind(StepKind):
         if spectrum is not None:
             writer.chain_block(spectrum)
 
-    def compare_parts(self, run_b, run_a, label: str, out: Path, outline) -> list[str]:
+    def compare_parts(self, run_b, run_a, label: str, out: Path, outline):
         return _compare_maps(run_b, run_a, label, out, outline)
 
 
@@ -424,11 +424,12 @@ def _emission_table(writer, peaks) -> None:
                                             "prominence_db": ".1f"}))
 
 
-def _compare_maps(run_b, run_a, label: str, out: Path, outline) -> list[str]:
-    """Combined-map change after minus before, the largest improvement, both hot-spot tables."""
+def _compare_maps(run_b, run_a, label: str, out: Path, outline):
+    """Combined-map change after minus before (its extremes join the summary), hot-spot tables."""
     from bench import plots
     from bench.analysis import maps as maps_mod
     from bench.analysis import runview
+    from bench.analysis.changes import ChangeExtremes, KindComparison
     from bench.htmlkit import embed_png, esc, safe_name
 
     maps_b, maps_a = maps_mod.grid_maps(run_b, label), maps_mod.grid_maps(run_a, label)
@@ -437,14 +438,15 @@ def _compare_maps(run_b, run_a, label: str, out: Path, outline) -> list[str]:
                                change.y_m, change.delta_db,
                                title=f"{label}: combined map change ({maps_a.what})",
                                outline_m=outline)
-    parts = [embed_png(path, f"map change of {label}")]
-    if np.any(np.isfinite(change.delta_db)):
-        iy, ix = np.unravel_index(int(np.nanargmin(change.delta_db)), change.delta_db.shape)
-        parts.append(f"<p>Largest map improvement {change.delta_db[iy, ix]:+.1f} dB at x = "
-                     f"{change.x_m[ix] * 1e3:.1f} mm, y = {change.y_m[iy] * 1e3:.1f} mm.</p>")
+    yy, xx = np.meshgrid(change.y_m, change.x_m, indexing="ij")
+    places = [f"x = {x * 1e3:.1f} mm, y = {y * 1e3:.1f} mm" for x, y in zip(xx.ravel(), yy.ravel())]
+    extremes = ChangeExtremes.of("combined map", "position", change.delta_db, places)
+    html = [embed_png(path, f"map change of {label}")]
+    if extremes is not None:
+        html.append(f"<p>Map change, {esc(maps_a.what)}: {esc(extremes.text())}.</p>")
     unit_text = runview.UNIT_TEXT.get(maps_a.unit, maps_a.unit)
     for name, gm in (("before", maps_b), ("after", maps_a)):
         main = gm.panels()[-1][0]  # the combined map (the only map with one rotation)
-        parts.append(f"<h4>Hot spots {name} ({esc(main)} map, {esc(gm.what)})</h4>"
-                     + _hot_spot_table(gm.hot_spots(main), unit_text))
-    return parts
+        html.append(f"<h4>Hot spots {name} ({esc(main)} map, {esc(gm.what)})</h4>"
+                    + _hot_spot_table(gm.hot_spots(main), unit_text))
+    return KindComparison(() if extremes is None else (extremes,), tuple(html))
