@@ -67,7 +67,7 @@ def test_peak_of_constructed_map_is_at_the_source(tmp_path):
     m = maps.grid_maps(run, "scan", freq_hz=50.2e6)  # nearest bin is 50 MHz
     x, y, level = m.peak()
     assert (x, y) == pytest.approx((0.02, 0.01), abs=1e-9)
-    # H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)) (reference sheet §3.2)
+    # H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)) (probe factor AF_H = H/V, common practice)
     assert level == pytest.approx(60.0 + loop_factor_db(50e6), abs=1e-4)
     assert m.unit == "dbua_per_m"
     np.testing.assert_allclose(m.x_m, [0.0, 0.01, 0.02, 0.03, 0.04], atol=1e-12)
@@ -146,7 +146,7 @@ def test_runview_corrects_with_the_manifest_chain(tmp_path):
                         rotations=(0.0,))
     spec = runview.corrected_spectrum(run, "scan")
     np.testing.assert_allclose(spec.freq_hz, FREQ)
-    expected = line(100e6, 40.0, floor_db=5.0) + loop_factor_db(FREQ)  # reference sheet §3.2
+    expected = line(100e6, 40.0, floor_db=5.0) + loop_factor_db(FREQ)  # AF_H = H/V
     np.testing.assert_allclose(spec.level, expected, atol=1e-4)
     assert spec.unit == "dbua_per_m" and "loop" in spec.chain_text
     assert runview.step_chain(run, "scan").result_quantity == "dbua_per_m"
@@ -188,10 +188,10 @@ def test_step_limit_extrapolation_and_near_field_warning(tmp_path):
     warnings = []
     limit = runview.step_limit(run, "pre", warnings=warnings)
     # CISPR 32 Table A.4 class B 10 m: 30 dBuV/m at 30-230 MHz; 10 m -> 1 m at 20 dB/decade
-    # adds 20 dB (reference sheet §3.1)
+    # adds 20 dB (FCC 47 CFR 15.31(f)(1), 20 dB/decade)
     assert limit.level("quasi-peak", 100e6) == pytest.approx(30.0 + 20.0, abs=1e-9)
     assert limit.distance_m == 1.0
-    # lambda/2pi at 30 MHz = 1.59 m > 1 m (reference sheet §5.1): a near-field warning
+    # lambda/2pi at 30 MHz = 1.59 m > 1 m (Ott; derived): a near-field warning
     assert any("lambda/2pi" in w for w in warnings)
 
 

@@ -144,12 +144,12 @@ def test_report_tables_events_chain_and_missing_step(report):
 def test_corrected_ambient_and_limit_feed_the_plot(report, tmp_path):
     run, _, _ = report
     spec = runview.corrected_spectrum(run, EVIL)
-    # E = V + AF (reference sheet §3.2); AF linear in log10(f) between 30 MHz (10 dB/m) and
+    # E = V + AF (AF = E/V, common practice); AF linear in log10(f) between 30 MHz (10 dB/m) and
     # 1 GHz (30 dB/m) (transducers.py docstring)
     af_48 = 10.0 + 20.0 * np.log10(48 / 30) / np.log10(1000 / 30)
     assert spec.level[18] == pytest.approx(35.0 + af_48, abs=1e-4)
     limit = runview.step_limit(run, EVIL)
-    # CISPR 32 Table A.4 class B 3 m: 40 dBuV/m at 30-230 MHz (reference sheet §2.1)
+    # CISPR 32 Table A.4 clause A4.2, class B 3 m: 40 dBuV/m at 30-230 MHz
     assert limit.level("quasi-peak", 100e6) == pytest.approx(40.0)
     # a 40k-point trace plots (min/max envelope keeps it quick)
     freq = np.linspace(30e6, 1e9, 40001)

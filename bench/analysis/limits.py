@@ -26,10 +26,11 @@ A level is one string (flat segment) or two strings ``["66 dBuV", "56 dBuV"]`` f
 changes linearly with log10(frequency) between its ends (CISPR 32 conducted class B, 0.15-0.5
 MHz). Field levels may also be written linearly (``"100 uV/m"``) as FCC rules state them.
 
-Rules implemented (reference sheet §2.4):
+Rules implemented (docs/physics.md, section 7):
 
-* At a frequency shared by two segments the **lower** value applies (CISPR table notes;
-  FCC §15.109(c) "the tighter limit applies at the band edges").
+* At a frequency shared by two segments the **lower** value applies (CISPR 32 table notes, "the
+  lower limit shall apply at the transition frequency", from memory; FCC 47 CFR 15.109(c)
+  "the tighter limit applies at the band edges").
 * Outside every segment of a line the level is NaN.
 * Exactly 1 GHz belongs to the quasi-peak table in the built-in files; the lines above 1 GHz
   start just above it (``start_exclusive = true``, FCC §15.35(b) "above 1000 MHz").
@@ -97,7 +98,8 @@ class LimitSegment:
         Frequency range in Hz, ``start_hz < stop_hz``.
     start_level, stop_level : float
         Level at each end, in the unit of the limit set. Equal for a flat segment; otherwise
-        the level changes linearly with log10(frequency) (reference sheet §2.5).
+        the level changes linearly with log10(frequency) (CISPR 32 conducted limits, "decreasing
+        linearly with the logarithm of the frequency").
     """
 
     start_hz: float
@@ -109,7 +111,7 @@ class LimitSegment:
         """Level at frequencies inside the segment (no range check), linear in log10(f)."""
         if self.start_level == self.stop_level:
             return np.full(np.shape(freq_hz), self.start_level)
-        # L(f) = L1 - (L1 - L2) * log10(f/f1) / log10(f2/f1)   (reference sheet §2.5)
+        # L(f) = L1 - (L1 - L2) * log10(f/f1) / log10(f2/f1): linear in log f (CISPR 32, 0.15-0.5 MHz)
         fraction = np.log10(freq_hz / self.start_hz) / math.log10(self.stop_hz / self.start_hz)
         return self.start_level + (self.stop_level - self.start_level) * fraction
 
@@ -162,7 +164,7 @@ class LimitLine:
                 else freq >= seg.start_hz
             inside = above_start & (freq <= seg.stop_hz)
             # fmin ignores NaN: where two segments share a frequency the lower one wins
-            # (CISPR table notes, FCC §15.109(c); reference sheet §2.4).
+            # (CISPR 32 table notes, from memory; FCC 47 CFR 15.109(c)).
             out[inside] = np.fmin(out[inside], seg.level_at(freq[inside]))
         return out.reshape(np.shape(freq_hz))
 
@@ -246,7 +248,8 @@ class LimitSet:
         """Lowest limit of any detector at each frequency (NaN where no line applies).
 
         A peak-detector trace below this level meets every line, since peak >= quasi-peak >=
-        average for any signal (reference sheet §1.6).
+        average for any signal measured with the same bandwidth (CISPR 16-1-1 detector
+        definitions; common practice in pre-scans).
         """
         levels = [line.level(freq_hz) for line in self.lines]
         return np.fmin.reduce(np.stack(levels), axis=0)
@@ -259,8 +262,8 @@ class LimitSet:
         distance_m : float
             New distance in m.
         db_per_decade : float
-            Fall-off rate; 20 dB/decade (1/r) is the far-field rule, reference sheet §3.1.
-            (FCC §15.31(f)(2) uses 40 dB/decade below 30 MHz.)
+            Fall-off rate; 20 dB/decade (1/r) is the far-field rule (FCC 47 CFR 15.31(f)(1)).
+            (FCC 15.31(f)(2) uses 40 dB/decade below 30 MHz.)
 
         Returns
         -------
@@ -290,7 +293,7 @@ def distance_correction_db(from_m: float, to_m: float, db_per_decade: float = 20
     """dB to add to a level at ``from_m`` to get the level at ``to_m``.
 
     ``db_per_decade * log10(from_m / to_m)``; 20 dB/decade is the far-field (1/r) rule, so
-    10 m -> 3 m gives +10.46 dB (reference sheet §3.1).
+    10 m -> 3 m gives +10.46 dB (FCC 47 CFR 15.31(f)(1): inverse linear distance).
     """
     if not (from_m > 0 and to_m > 0):
         raise AnalysisError(f"distances must be > 0 m, found {from_m!r} m and {to_m!r} m")
@@ -316,7 +319,7 @@ def near_field_warnings(distance_m: float, freq_hz, product_size_m: float | None
     Returns
     -------
     list of str
-        Empty when the far-field assumptions hold. Checks (reference sheet §5.1):
+        Empty when the far-field assumptions hold. Checks (Ott; Balanis ch. 2, field regions):
         r < lambda/(2 pi) at the lowest frequency (a small source's near field, kr < 1) and
         r < 2 D^2 / lambda at the highest frequency (Fraunhofer distance of a product of size D).
     """
