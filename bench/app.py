@@ -322,8 +322,12 @@ def export(folder: Path, csv_dir: Path, *, parquet: bool = False) -> list[Path]:
         run.close()
 
 
-def compare(before: Path, after: Path, *, out: Path | None = None) -> Path:
-    """Before/after comparison of two runs; returns the HTML file."""
+def compare(before: Path, after: Path, *, out: Path | None = None):
+    """Before/after comparison of two runs; returns a :class:`bench.compare.Comparison`.
+
+    Its ``path`` is the HTML file and its ``lines()`` the per-step summary written at the top
+    of that page, computed once for both.
+    """
     from bench.compare import compare_runs
 
     return compare_runs(before, after, out=out)

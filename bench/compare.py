@@ -5,30 +5,35 @@ difference (after minus before, dB: negative is an improvement), the suspects ma
 frequency with their change in level and margin, and for grid steps the change of the combined
 near-field map and both hot-spot tables. Output: ``compare.html`` (self-contained, like the
 report) and PNGs, by default in ``<after run>/compare-<before run folder name>/``.
+
+Each step is summarised once, in a :class:`bench.analysis.changes.StepChange`: the line the
+terminal prints, the line at the top of the page and the figures of the step's section are all
+rendered from it (:class:`Comparison` carries them to the caller).
 """
 
 from __future__ import annotations
 
 import shutil
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from bench import plots
+from bench.analysis.changes import ChangeExtremes, KindComparison, StepChange
 from bench.analysis.maps import MapChange, compare_maps
 from bench.analysis import runview
 from bench.analysis.peaks import find_peaks_hz
 from bench.units import format_hz
 from bench.errors import AnalysisError, BenchError
-from bench.htmlkit import DISCLAIMER, embed_png, esc, html_table, page, safe_name
+from bench.htmlkit import DISCLAIMER, embed_png, esc, html_table, mhz, page, safe_name
 from bench.steps import KINDS
 from bench.store import open_run
 
-__all__ = ["MATCH_COLUMNS", "MapChange", "compare_maps", "compare_runs", "compare_spectra", "match_suspects",
-           "match_tolerance_hz"]
+__all__ = ["MATCH_COLUMNS", "Comparison", "MapChange", "StepChange", "compare_maps", "compare_runs",
+           "compare_spectra", "match_suspects", "match_tolerance_hz"]
 
 #: Columns of the table returned by :func:`match_suspects`.
 MATCH_COLUMNS = ("change", "detector", "freq_before_hz", "freq_after_hz", "level_before",
@@ -171,15 +176,24 @@ def match_suspects(before: pd.DataFrame, after: pd.DataFrame, rbw_hz: float) -> 
 # ----------------------------------------------------------------------------- run comparison
 
 
-@dataclass
-class _StepComparison:
-    label: str
-    unit: str
-    freq_hz: np.ndarray
-    delta_db: np.ndarray
-    peaks_delta: pd.DataFrame
-    matches: pd.DataFrame
-    parts: list[str] = field(default_factory=list)
+@dataclass(frozen=True)
+class Comparison:
+    """What a comparison produced: the page and the per-step summaries at its top.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+        ``compare.html``.
+    steps : tuple of StepChange
+        One per compared step, in page order.
+    """
+
+    path: Path
+    steps: tuple[StepChange, ...]
+
+    def lines(self) -> list[str]:
+        """The summary lines, exactly as written at the top of the page."""
+        return [step.line() for step in self.steps]
 
 
 def _check_units(label: str, before, after) -> None:
@@ -230,37 +244,30 @@ def _window_max(spec, freq_hz: float, half_width_hz: float) -> float:
     return float(values.max()) if values.size else float("nan")
 
 
-def _extremes(freq: np.ndarray, delta: np.ndarray, what: str) -> str:
-    best, worst = int(np.argmin(delta)), int(np.argmax(delta))
-    parts = [f"largest improvement: {delta[best]:+.1f} dB at {freq[best] / 1e6:.1f} MHz"
-             if delta[best] < 0 else "no improvement"]
-    parts.append(f"largest increase: {delta[worst]:+.1f} dB at {freq[worst] / 1e6:.1f} MHz"
-                 if delta[worst] > 0 else "no increase")
-    return f"{'; '.join(parts)} (over {delta.size} {what})"
+def _mhz_text(freq_hz) -> list[str]:
+    return [f"{f / 1e6:.1f} MHz" for f in np.asarray(freq_hz, float)]
 
 
-def _summary_line(label: str, cmp: _StepComparison) -> str:
-    """One line: extremes over matched suspects and over spectrum peaks, suspect counts."""
-    texts = []
-    matched = cmp.matches[cmp.matches["change"] == "matched"]
-    if len(matched):
-        texts.append(_extremes(matched["freq_after_hz"].to_numpy(float),
-                               matched["delta_db"].to_numpy(float), "matched suspects"))
-    if len(cmp.peaks_delta):
-        prefix = "spectrum peaks: " if texts else ""
-        texts.append(prefix + _extremes(cmp.peaks_delta["freq_hz"].to_numpy(float),
-                                        cmp.peaks_delta["delta_db"].to_numpy(float),
-                                        "spectrum peaks"))
-    if not texts:
-        texts.append("no emissions to compare")
-    if len(cmp.matches):
-        counts = cmp.matches["change"].value_counts()
-        texts.append(f"suspects matched {counts.get('matched', 0)}, new {counts.get('new', 0)}, "
-                     f"vanished {counts.get('vanished', 0)}")
-    return f"{label}: " + "; ".join(texts)
+def _spectral_changes(matches: pd.DataFrame, peaks: pd.DataFrame) -> tuple[ChangeExtremes, ...]:
+    """Extremes over the matched suspects and over the spectrum peaks (those that exist)."""
+    matched = matches[matches["change"] == "matched"]
+    found = (ChangeExtremes.of("matched suspects", "suspect", matched["delta_db"],
+                               _mhz_text(matched["freq_after_hz"])),
+             ChangeExtremes.of("spectrum peaks", "peak", peaks["delta_db"],
+                               _mhz_text(peaks["freq_hz"])))
+    return tuple(c for c in found if c is not None)
 
 
-def _compare_step(run_b, run_a, label: str, out: Path) -> _StepComparison:
+def _counts(matches: pd.DataFrame) -> tuple[int, int, int] | None:
+    if not len(matches):
+        return None
+    counts = matches["change"].value_counts()
+    return (int(counts.get("matched", 0)), int(counts.get("new", 0)),
+            int(counts.get("vanished", 0)))
+
+
+def _compare_step(run_b, run_a, label: str, out: Path) -> tuple[StepChange, list[str]]:
+    """The step's summary and its section's HTML, the section's figures taken from the summary."""
     spec_b = runview.corrected_spectrum(run_b, label)
     spec_a = runview.corrected_spectrum(run_a, label)
     _check_units(label, spec_b, spec_a)
@@ -268,15 +275,24 @@ def _compare_step(run_b, run_a, label: str, out: Path) -> _StepComparison:
     rbw_hz = float(np.nanmax([runview.step_rbw_hz(run_b, label),
                               runview.step_rbw_hz(run_a, label)]))
     matches = match_suspects(run_b.results(label), run_a.results(label), rbw_hz)
-    cmp = _StepComparison(label, spec_a.unit, f, delta,
-                          _peak_deltas(spec_b, spec_a, f, delta, rbw_hz), matches)
-    limit = _quiet_limit(run_a, label)
     path = plots.comparison_png(out / f"{safe_name(label)}-spectra.png",
                                 (spec_b.freq_hz, spec_b.level), (spec_a.freq_hz, spec_a.level),
                                 (f, delta), unit=spec_a.unit, title=f"{label}: before / after",
-                                limits=limit)
-    cmp.parts.append(embed_png(path, f"spectra of {label} before and after"))
-    return cmp
+                                limits=_quiet_limit(run_a, label))
+    html = [embed_png(path, f"spectra of {label} before and after")]
+    if len(matches):
+        html.append("<h3>Results matched by frequency</h3>" + html_table(
+            matches, _MATCH_HEADINGS, formats=_MATCH_FORMATS))
+    kind = str(runview.step_info(run_a, label).get("kind", ""))
+    own = KINDS[kind].compare_parts(run_b, run_a, label, out, _outline(run_a)) \
+        if kind in KINDS else KindComparison()
+    html += list(own.html)
+    changes = _spectral_changes(matches, _peak_deltas(spec_b, spec_a, f, delta, rbw_hz))
+    return StepChange(label, kind, changes + tuple(own.changes), _counts(matches)), html
+
+
+def _outline(run):
+    return run.manifest().get("board", {}).get("outline_m")
 
 
 def _quiet_limit(run, label):
@@ -293,10 +309,9 @@ _MATCH_HEADINGS = (("change", "change"), ("detector", "detector"),
                    ("margin_after_db", "margin after (dB)"),
                    ("delta_margin_db", "margin change (dB)"), ("status_before", "status before"),
                    ("status_after", "status after"))
-
-
-def _mhz(value):
-    return (None if value is None or not np.isfinite(value) else value / 1e6), ".4f"
+_MATCH_FORMATS = {"freq_before_hz": mhz, "freq_after_hz": mhz,
+                  "level_before": ".2f", "level_after": ".2f", "delta_db": "+.2f",
+                  "margin_before_db": ".2f", "margin_after_db": ".2f", "delta_margin_db": "+.2f"}
 
 
 def _common_labels(run_b, run_a) -> list[str]:
@@ -305,7 +320,7 @@ def _common_labels(run_b, run_a) -> list[str]:
             and not run_b.traces(lb).empty and not run_a.traces(lb).empty]
 
 
-def compare_runs(before_folder, after_folder, *, out=None) -> Path:
+def compare_runs(before_folder, after_folder, *, out=None) -> Comparison:
     """Compare two runs step by step and write ``compare.html`` with its PNGs.
 
     Parameters
@@ -317,8 +332,9 @@ def compare_runs(before_folder, after_folder, *, out=None) -> Path:
 
     Returns
     -------
-    pathlib.Path
-        The HTML file.
+    Comparison
+        The HTML file (``path``) and the per-step summaries at its top (``steps``; their
+        :meth:`Comparison.lines` are what ``bench compare`` prints).
 
     Raises
     ------
@@ -334,7 +350,7 @@ def compare_runs(before_folder, after_folder, *, out=None) -> Path:
         run_a.close()
 
 
-def _compare_open_runs(run_b, run_a, out) -> Path:
+def _compare_open_runs(run_b, run_a, out) -> Comparison:
     out = Path(out) if out is not None else \
         Path(run_a.folder) / f"compare-{Path(run_b.folder).name}"
     labels = _common_labels(run_b, run_a)
@@ -353,27 +369,16 @@ def _compare_open_runs(run_b, run_a, out) -> Path:
         raise
 
 
-def _write_comparison(run_b, run_a, labels, out: Path) -> Path:
-    sections, summary = [], []
+def _write_comparison(run_b, run_a, labels, out: Path) -> Comparison:
+    steps, sections = [], []
     for label in labels:
-        kind = runview.step_info(run_a, label).get("kind", "")
-        cmp = _compare_step(run_b, run_a, label, out)
-        summary.append(_summary_line(label, cmp))
-        body = [f"<h2>Step {esc(label)} ({esc(kind)})</h2>"] + cmp.parts
-        if len(cmp.matches):
-            body.append("<h3>Results matched by frequency</h3>" + html_table(
-                cmp.matches, _MATCH_HEADINGS, formats={
-                    "freq_before_hz": _mhz, "freq_after_hz": _mhz, "level_before": ".2f",
-                    "level_after": ".2f", "delta_db": "+.2f", "margin_before_db": ".2f",
-                    "margin_after_db": ".2f", "delta_margin_db": "+.2f"}))
-        if kind in KINDS:
-            outline = run_a.manifest().get("board", {}).get("outline_m")
-            body += KINDS[kind].compare_parts(run_b, run_a, label, out, outline)
-        sections.append("".join(body))
-    path = out / "compare.html"
-    path.write_text(_page(run_b, run_a, summary, sections), encoding="utf-8")
-    (out / "summary.txt").write_text("\n".join(summary) + "\n", encoding="utf-8")
-    return path
+        step, html = _compare_step(run_b, run_a, label, out)
+        steps.append(step)
+        sections.append(f"<h2>Step {esc(label)} ({esc(step.kind)})</h2>" + "".join(html))
+    result = Comparison(out / "compare.html", tuple(steps))
+    result.path.write_text(_page(run_b, run_a, result.lines(), sections), encoding="utf-8")
+    (out / "summary.txt").write_text("\n".join(result.lines()) + "\n", encoding="utf-8")
+    return result
 
 
 def _page(run_b, run_a, summary: list[str], sections: list[str]) -> str:
@@ -381,10 +386,10 @@ def _page(run_b, run_a, summary: list[str], sections: list[str]) -> str:
     ident = "".join(f"<tr><th>{esc(k)}</th><td>{esc(m.get('name'))}</td><td>{esc(m.get('created'))}"
                     f"</td><td>{esc(Path(r.folder).name)}</td></tr>"
                     for k, m, r in (("before", mb, run_b), ("after", ma, run_a)))
+    items = "".join(f"<li>{esc(line)}</li>" for line in summary)
     body = (f"<h1>Before / after: {esc(ma.get('name', ''))}</h1>"
             f'<div class="notice">{esc(DISCLAIMER)}</div>'
             f"<table><tr><th></th><th>sequence</th><th>created</th><th>run folder</th></tr>"
             f"{ident}</table><h2>Summary</h2><p>Changes are after minus before: negative is "
-            "lower emission.</p><ul>" + "".join(f"<li>{esc(s)}</li>" for s in summary) + "</ul>"
-            + "".join(sections))
+            f'lower emission.</p><ul class="summary">{items}</ul>' + "".join(sections))
     return page("Before / after comparison", body)

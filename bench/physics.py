@@ -1,20 +1,24 @@
 """Physics the analysis and the simulated bench rely on: pure functions, SI units.
 
-Conventions (reference sheet, header): phasors use e^{+jwt}; a complex field or voltage is the
+Conventions (docs/physics.md): phasors use e^{+jwt}; a complex field or voltage is the
 **peak** phasor; dB(uV) = 20*log10(V / 1 uV); a line shown by an analyzer is the RMS value
 (peak / sqrt(2)).
 
-Contents, with the sheet section each follows:
+Contents, with the source each follows (derivations in docs/physics.md):
 
-* wavelength, field-region boundaries, free-space path loss, antenna factor from gain (§4, §5.1);
-* exact wave impedance of ideal electric and magnetic dipoles (§5.2);
-* full fields (near and far terms) of a Hertzian electric dipole (Balanis eq. 4-8, 4-10; §6.1)
-  and of a small loop / magnetic dipole (Balanis eq. 5-18; §6.2) for any position and moment
-  direction, and their images in a perfectly conducting plane (§6.4);
-* near-field probe transfer: H loop (Faraday's law) and short E stub (§6.3);
-* Biot-Savart closed forms used as oracles (§6.3);
-* trapezoidal clock spectrum and its envelope (Paul, ch. 3; §7);
-* Gaussian RBW filter relations (§1.7, §1.9) and displayed average noise level (§8).
+* wavelength, field-region boundaries (Balanis, *Antenna Theory* 3rd ed., ch. 2, field
+  regions; Ott for lambda/2pi), free-space path loss (Friis transmission equation) and antenna
+  factor from gain (derived from the effective aperture lambda^2*G/(4*pi));
+* exact wave impedance of ideal electric and magnetic dipoles (derived from the dipole fields);
+* full fields (near and far terms) of a Hertzian electric dipole (Balanis eq. 4-8, 4-10) and of
+  a small loop / magnetic dipole (Balanis eq. 5-18) for any position and moment direction, and
+  their images in a perfectly conducting plane (image method);
+* near-field probe transfer: H loop (Faraday's law) and short E stub (derived);
+* Biot-Savart closed forms used as oracles (textbook magnetostatics);
+* trapezoidal clock spectrum and its envelope (Paul, *Introduction to Electromagnetic
+  Compatibility* 2nd ed., ch. 3);
+* Gaussian RBW filter relations (derived) and displayed average noise level (kT0 + NF + 10
+  log10 RBW, derived).
 """
 
 from __future__ import annotations
@@ -62,12 +66,12 @@ __all__ = [
 
 #: Boltzmann constant, exact since the 2019 SI redefinition.
 BOLTZMANN_J_PER_K = 1.380649e-23
-#: kT at the reference temperature 290 K in dBm/Hz: -173.98 (reference sheet §4, §8).
+#: kT at the reference temperature 290 K in dBm/Hz: -173.98 (derived from the exact k).
 KT0_DBM_PER_HZ = 10.0 * math.log10(BOLTZMANN_J_PER_K * 290.0 / 1e-3)
 
 
 # ---------------------------------------------------------------------------------------------
-# Wavelength, regions, path loss, antenna factor (sheet §4, §5.1)
+# Wavelength, regions, path loss, antenna factor (Balanis ch. 2; Friis; docs/physics.md 1, 2, 6)
 # ---------------------------------------------------------------------------------------------
 
 def wavelength_m(freq_hz):
@@ -76,7 +80,9 @@ def wavelength_m(freq_hz):
 
 
 def reactive_near_field_m(d_m, freq_hz):
-    """Outer edge of the reactive near field, 0.62*sqrt(D^3/lambda), metres (sheet §5.1).
+    """Outer edge of the reactive near field, 0.62*sqrt(D^3/lambda), metres.
+
+    Balanis, *Antenna Theory* 3rd ed., ch. 2, field regions.
 
     Parameters
     ----------
@@ -89,17 +95,17 @@ def reactive_near_field_m(d_m, freq_hz):
 
 
 def fraunhofer_distance_m(d_m, freq_hz):
-    """Far-field (Fraunhofer) distance 2*D^2/lambda, metres (sheet §5.1)."""
+    """Far-field (Fraunhofer) distance 2*D^2/lambda, metres (Balanis ch. 2, field regions)."""
     return _scalar_or_array(2.0 * np.asarray(d_m, dtype=float) ** 2 / wavelength_m(freq_hz))
 
 
 def small_source_boundary_m(freq_hz):
-    """Near/far transition of a small source, lambda / (2*pi) (kr = 1), metres (sheet §5.1)."""
+    """Near/far transition of a small source, lambda / (2*pi) (kr = 1), metres (Ott)."""
     return _scalar_or_array(np.asarray(wavelength_m(freq_hz)) / (2.0 * np.pi))
 
 
 def free_space_path_loss_db(distance_m, freq_hz):
-    """Free-space path loss 20*log10(4*pi*d*f/c), dB (sheet §4, Friis)."""
+    """Free-space path loss 20*log10(4*pi*d*f/c), dB (Friis equation, isotropic antennas)."""
     d = np.asarray(distance_m, dtype=float)
     return _scalar_or_array(20.0 * np.log10(4.0 * np.pi * d * np.asarray(freq_hz, dtype=float) / C0_M_PER_S))
 
@@ -107,14 +113,17 @@ def free_space_path_loss_db(distance_m, freq_hz):
 def antenna_factor_constant_db(load_ohm: float = 50.0) -> float:
     """Constant K in AF(dB/m) = 20*log10(f/MHz) - G(dBi) - K; 29.774 dB for 50 ohm.
 
-    From AF = sqrt(4*pi*eta0/R) / (lambda*sqrt(G)) (sheet §4: 9.73 = sqrt(4*pi*eta0/50)):
+    From AF = sqrt(4*pi*eta0/R) / (lambda*sqrt(G)) (derived in docs/physics.md, section 6:
+    9.73 = sqrt(4*pi*eta0/50)):
     K = 20*log10(c / 1 MHz) - 20*log10(sqrt(4*pi*eta0/R)).
     """
     return 20.0 * math.log10(C0_M_PER_S / 1e6) - 10.0 * math.log10(4.0 * math.pi * ETA0_OHM / load_ohm)
 
 
 def antenna_factor_db_from_gain(freq_hz, gain_dbi, load_ohm: float = 50.0):
-    """Antenna factor of a matched, co-polarized antenna in its far field, dB(1/m) (sheet §4).
+    """Antenna factor of a matched, co-polarized antenna in its far field, dB(1/m).
+
+    Derived in docs/physics.md, section 6.
 
     AF = E / V = sqrt(4*pi*eta0/R) / (lambda*sqrt(G)).
 
@@ -138,11 +147,11 @@ def antenna_factor_db_from_gain(freq_hz, gain_dbi, load_ohm: float = 50.0):
 
 
 # ---------------------------------------------------------------------------------------------
-# Wave impedance (sheet §5.2)
+# Wave impedance (derived from Balanis eq. 4-8, 4-10 and 5-18; docs/physics.md, section 3)
 # ---------------------------------------------------------------------------------------------
 
 def wave_impedance_electric_ohm(kr):
-    """|E_theta / H_phi| of a Hertzian dipole at theta = 90 deg, ohm (sheet §5.2).
+    """|E_theta / H_phi| of a Hertzian dipole at theta = 90 deg, ohm (derived; docs/physics.md 3).
 
     eta0*sqrt(1 - x^2 + x^4) / (x*sqrt(1 + x^2)) with x = kr; tends to eta0/(kr) close in.
     """
@@ -151,13 +160,13 @@ def wave_impedance_electric_ohm(kr):
 
 
 def wave_impedance_magnetic_ohm(kr):
-    """|E_phi / H_theta| of a small loop at theta = 90 deg, ohm (sheet §5.2); eta0^2 / Z_E."""
+    """|E_phi / H_theta| of a small loop at theta = 90 deg, ohm (derived); eta0^2 / Z_E."""
     x = np.asarray(kr, dtype=float)
     return ETA0_OHM * x * np.sqrt(1.0 + x**2) / np.sqrt(1.0 - x**2 + x**4)
 
 
 # ---------------------------------------------------------------------------------------------
-# Dipole fields (sheet §6.1, §6.2), general position and orientation
+# Dipole fields (Balanis eq. 4-8, 4-10 and 5-18), general position and orientation
 # ---------------------------------------------------------------------------------------------
 
 def _geometry(source_m, direction, points_m):
@@ -187,7 +196,7 @@ def _radial_terms(freq_hz, moment, r):
 def electric_dipole_field(source_m, direction, moment_a_m, freq_hz, points_m, far_only=False):
     """Complex E and H of a Hertzian (infinitesimal) electric dipole, Cartesian components.
 
-    Balanis eq. 4-8a..c and 4-10a..c (sheet §6.1), with the local spherical frame of the moment
+    Balanis eq. 4-8a..c and 4-10a..c (numbers from memory), with the local spherical frame of the moment
     rotated into Cartesian by theta_hat = (cos(theta)*r_hat - u)/sin(theta) and
     phi_hat = (u x r_hat)/sin(theta); the sin(theta) cancels against the field's own
     sin(theta), so the result is regular on the dipole axis.
@@ -229,7 +238,7 @@ def electric_dipole_field(source_m, direction, moment_a_m, freq_hz, points_m, fa
 def magnetic_dipole_field(source_m, direction, moment_a_m2, freq_hz, points_m, far_only=False):
     """Complex E and H of a small loop (magnetic dipole), Cartesian components.
 
-    Balanis eq. 5-18a..c with m = N*I*pi*a^2 (sheet §6.2); same frame rotation as
+    Balanis eq. 5-18a..c with m = N*I*pi*a^2 (equation number from memory); same frame rotation as
     :func:`electric_dipole_field`. The loop current circulates right-handed about
     ``direction`` (the loop axis).
 
@@ -276,7 +285,7 @@ def dipole_field(kind, source_m, direction, moment, freq_hz, points_m, far_only=
 
 
 def image_source(kind, source_m, direction, plane_z_m: float = 0.0):
-    """Image of a dipole in a perfectly conducting plane z = plane_z_m (sheet §6.4).
+    """Image of a dipole in a perfectly conducting plane z = plane_z_m (image method).
 
     An electric current's horizontal part is reversed and its vertical part kept (Gamma_h = -1,
     Gamma_v = +1). A magnetic dipole (an axial vector) images the other way round: horizontal
@@ -297,7 +306,7 @@ def image_source(kind, source_m, direction, plane_z_m: float = 0.0):
 
 def dipole_field_over_ground(kind, source_m, direction, moment, freq_hz, points_m,
                              plane_z_m: float = 0.0, far_only=False):
-    """Field of a dipole above a perfectly conducting plane: direct plus image (sheet §6.4).
+    """Field of a dipole above a perfectly conducting plane: direct plus image (image method).
 
     Arguments as :func:`dipole_field`; the source and the points must lie above the plane.
     """
@@ -308,7 +317,7 @@ def dipole_field_over_ground(kind, source_m, direction, moment, freq_hz, points_
 
 
 # ---------------------------------------------------------------------------------------------
-# Probes (sheet §6.3)
+# Probes (Faraday's law; docs/physics.md, section 4)
 # ---------------------------------------------------------------------------------------------
 
 def loop_inductance_h(radius_m, wire_radius_m, turns: int = 1):
@@ -324,7 +333,7 @@ def loop_inductance_h(radius_m, wire_radius_m, turns: int = 1):
 
 def loop_probe_voltage(h_component_a_per_m, freq_hz, radius_m, turns: int = 1,
                        inductance_h=None, load_ohm: float = 50.0):
-    """Voltage of an H-field loop probe, V (complex peak phasor; sheet §6.3).
+    """Voltage of an H-field loop probe, V (complex peak phasor; Faraday's law).
 
     Open circuit (Faraday): V = j*w*mu0*N*A*H for a uniform field H along the loop axis.
     With the loop inductance L given, the loaded voltage is V*R/(R + j*w*L): rising at
@@ -355,7 +364,7 @@ def loop_probe_voltage(h_component_a_per_m, freq_hz, radius_m, turns: int = 1,
 
 def e_probe_voltage(e_component_v_per_m, freq_hz, effective_height_m, capacitance_f=None,
                     load_ohm: float = 50.0):
-    """Voltage of a short E-field stub probe into ``load_ohm``, V (complex; sheet §6.3).
+    """Voltage of a short E-field stub probe into ``load_ohm``, V (complex; docs/physics.md 4).
 
     Open circuit V = E*h_e; a source capacitance C into R gives the high-pass
     V*j*w*C*R/(1 + j*w*C*R) (+20 dB/decade below 1/(2*pi*C*R)).
@@ -375,7 +384,7 @@ def peak_to_dbm(voltage_peak, load_ohm: float = 50.0):
 
 
 # ---------------------------------------------------------------------------------------------
-# Biot-Savart closed forms (sheet §6.3)
+# Biot-Savart closed forms (textbook magnetostatics; a trace over ground by the image method)
 # ---------------------------------------------------------------------------------------------
 
 def loop_axis_h_a_per_m(current_a, radius_m, z_m):
@@ -399,13 +408,13 @@ def trace_over_plane_h_a_per_m(current_a, trace_height_m, probe_height_m):
 
 
 # ---------------------------------------------------------------------------------------------
-# Trapezoidal clock spectrum (Paul ch. 3; sheet §7)
+# Trapezoidal clock spectrum (Paul, Introduction to EMC, ch. 3)
 # ---------------------------------------------------------------------------------------------
 
 def trapezoid_harmonics(amplitude_v, freq_hz, duty, rise_s, n_max, n_min: int = 1):
     """One-sided peak amplitudes of a trapezoidal pulse train (rise = fall time).
 
-    |V_n| = 2*A*d*|sinc(n*d)|*|sinc(n*tr/T)| with NumPy's normalised sinc (sheet §7).
+    |V_n| = 2*A*d*|sinc(n*d)|*|sinc(n*tr/T)| with NumPy's normalised sinc (Paul ch. 3).
 
     Parameters
     ----------
@@ -431,13 +440,13 @@ def trapezoid_harmonics(amplitude_v, freq_hz, duty, rise_s, n_max, n_min: int = 
 
 
 def trapezoid_corner_frequencies_hz(freq_hz, duty, rise_s):
-    """Envelope corners f1 = 1/(pi*tau), f2 = 1/(pi*tr) with tau = d/f (sheet §7)."""
+    """Envelope corners f1 = 1/(pi*tau), f2 = 1/(pi*tr) with tau = d/f (Paul ch. 3)."""
     tau_s = duty / freq_hz
     return 1.0 / (np.pi * tau_s), 1.0 / (np.pi * rise_s)
 
 
 def trapezoid_envelope_v(amplitude_v, freq_hz, duty, rise_s, at_freq_hz):
-    """Bode envelope of the trapezoid spectrum at ``at_freq_hz``, volts (sheet §7).
+    """Bode envelope of the trapezoid spectrum at ``at_freq_hz``, volts (Paul ch. 3).
 
     Flat at 2*A*d to f1, -20 dB/decade to f2, -40 dB/decade above.
     """
@@ -448,44 +457,44 @@ def trapezoid_envelope_v(amplitude_v, freq_hz, duty, rise_s, at_freq_hz):
 
 
 # ---------------------------------------------------------------------------------------------
-# Gaussian RBW filter and noise (sheet §1.7, §1.9, §8)
+# Gaussian RBW filter and noise (derived; docs/physics.md, section 8)
 # ---------------------------------------------------------------------------------------------
 
-_GAUSS_RATIO = math.sqrt(math.pi / (4.0 * math.log(2.0)))  # 1.0645 (sheet §1.9)
+_GAUSS_RATIO = math.sqrt(math.pi / (4.0 * math.log(2.0)))  # 1.0645 (derived for a Gaussian)
 
 
 def gaussian_rbw_attenuation_db(offset_hz, b6_hz):
     """Attenuation of a Gaussian RBW filter at ``offset_hz`` from its centre, dB (positive).
 
-    6*(2*df/B6)^2 (sheet §1.7): the dB attenuation of a Gaussian grows with the square of the
-    offset and is 6 dB at df = B6/2. Taking "6 dB" literally (not 20*log10(2) = 6.02 dB) keeps
-    the sheet's scalloping table (1.50 dB at step B6/2).
+    6*(2*df/B6)^2 (derived): the dB attenuation of a Gaussian grows with the square of the
+    offset and is 6 dB at df = B6/2. Taking "6 dB" literally (not 20*log10(2) = 6.02 dB) gives
+    the usual worst-case scalloping of 1.50 dB at a step of B6/2 (docs/physics.md, section 8).
     """
     return 6.0 * (2.0 * np.asarray(offset_hz, dtype=float) / b6_hz) ** 2
 
 
 def b6_from_b3(b3_hz):
-    """6 dB bandwidth of a Gaussian filter from its 3 dB bandwidth: sqrt(2)*B3 (sheet §1.9)."""
+    """6 dB bandwidth of a Gaussian filter from its 3 dB bandwidth: sqrt(2)*B3 (derived)."""
     return _scalar_or_array(math.sqrt(2.0) * np.asarray(b3_hz, dtype=float))
 
 
 def b3_from_b6(b6_hz):
-    """3 dB bandwidth of a Gaussian filter from its 6 dB bandwidth: B6/sqrt(2) (sheet §1.9)."""
+    """3 dB bandwidth of a Gaussian filter from its 6 dB bandwidth: B6/sqrt(2) (derived)."""
     return _scalar_or_array(np.asarray(b6_hz, dtype=float) / math.sqrt(2.0))
 
 
 def enbw_hz(b3_hz):
-    """Equivalent noise bandwidth of a Gaussian filter: sqrt(pi/(4 ln 2))*B3 = 1.0645*B3 (§1.9)."""
+    """Equivalent noise bandwidth of a Gaussian filter: sqrt(pi/(4 ln 2))*B3 = 1.0645*B3."""
     return _scalar_or_array(_GAUSS_RATIO * np.asarray(b3_hz, dtype=float))
 
 
 def impulse_bandwidth_hz(b6_hz):
-    """Impulse bandwidth of a Gaussian filter: sqrt(pi/(4 ln 2))*B6 = 1.0645*B6 (§1.9)."""
+    """Impulse bandwidth of a Gaussian filter: sqrt(pi/(4 ln 2))*B6 = 1.0645*B6 (derived)."""
     return _scalar_or_array(_GAUSS_RATIO * np.asarray(b6_hz, dtype=float))
 
 
 def danl_dbm(noise_figure_db, rbw_hz):
-    """Displayed average noise level, power average: kT0 + NF + 10*log10(RBW), dBm (sheet §8).
+    """Displayed average noise level, power average: kT0 + NF + 10*log10(RBW), dBm (derived).
 
     kT0 = -173.98 dBm/Hz at 290 K. For a log-average display subtract 2.51 dB.
     """

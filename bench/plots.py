@@ -19,16 +19,23 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator
 from matplotlib.transforms import Affine2D
 
+from bench.analysis.maps import EDGE_NOTE
 from bench.errors import AnalysisError
 
 __all__ = [
+    "DELTA_SCALE_MIN_DB",
     "comparison_png",
     "delta_map_png",
+    "delta_scale_db",
     "map_png",
     "photo_transform",
     "spectrum_png",
 ]
 
+#: Smallest half-range of the colour scale of a change map, dB (our choice): a change of a
+#: few tenths of a dB, inside the repeatability of a re-homed probe (about 1 dB, from memory),
+#: stays pale instead of filling the colour range.
+DELTA_SCALE_MIN_DB = 3.0
 UNIT_TEXT = {"dbuv": "dBuV", "dbuv_per_m": "dBuV/m", "dbua_per_m": "dBuA/m", "dbm": "dBm",
              "db": "dB"}
 # Points kept per trace when drawing: a min/max envelope of this many buckets looks the same
@@ -38,7 +45,7 @@ _LIMIT_STYLE = {"quasi-peak": ("-", "#b2182b"), "peak": ("--", "#d6604d"),
                 "average": (":", "#762a83")}
 _STATUS_MARKER = {"fail": ("v", "#b2182b"), "marginal": ("^", "#e08214"), "pass": ("o", "#1b7837"),
                   "ambient": ("s", "#7f7f7f"), "inconclusive": ("D", "#5e3c99"),
-                  "hot spot": ("*", "#b35806")}
+                  "emission": ("*", "#b35806")}
 
 
 def _unit_text(unit: str) -> str:
@@ -340,17 +347,23 @@ def _panel_limits(ax, x_m, y_m, outline_m) -> None:
     ax.set_ylim(y.min() - pad, y.max() + pad)
 
 
-def _mark_spots(ax, hot_spots, rotation=None) -> None:
-    if hot_spots is None or not len(hot_spots):
-        return
-    for rank, row in enumerate(hot_spots.itertuples(index=False), start=1):
-        if rotation is not None and not math.isclose(row.rotation_deg, rotation):
-            continue
-        ax.plot(row.x_m * 1e3, row.y_m * 1e3, "+", color="white", ms=11, mew=2, zorder=4)
-        ax.plot(row.x_m * 1e3, row.y_m * 1e3, "+", color="black", ms=9, mew=1, zorder=5)
-        ax.annotate(str(rank), (row.x_m * 1e3, row.y_m * 1e3), xytext=(4, 4),
-                    textcoords="offset points", fontsize=8, color="white", zorder=5,
+def _mark_spots(ax, spots) -> bool:
+    """Mark and number one map's own hot spots; True when one lies on the scan's edge."""
+    if spots is None or not len(spots):
+        return False
+    for row in spots.itertuples(index=False):
+        x, y = row.x_m * 1e3, row.y_m * 1e3
+        ax.plot(x, y, "+", color="white", ms=11, mew=2, zorder=4)
+        ax.plot(x, y, "+", color="black", ms=9, mew=1, zorder=5)
+        if row.at_edge:  # a dashed ring: the maximum may lie beyond the scanned area
+            ax.plot(x, y, "o", ms=16, mfc="none", mec="white", mew=1.2, ls="none", zorder=5)
+            ax.plot(x, y, "o", ms=16, mfc="none", mec="black", mew=1.0, ls="none",
+                    zorder=5, dashes=(2, 2))
+        text = f"{row.rank} (edge)" if row.at_edge else str(row.rank)
+        ax.annotate(text, (x, y), xytext=(4, 4), textcoords="offset points", fontsize=8,
+                    color="white", zorder=6,
                     bbox={"boxstyle": "round,pad=0.1", "fc": "black", "alpha": 0.6, "lw": 0})
+    return bool(spots["at_edge"].any())
 
 
 def _finite_range(arrays) -> tuple[float, float]:
@@ -384,34 +397,47 @@ def map_png(path, maps, *, outline_m=None, photo=None, photo_points=None, title:
     unit : str
         Level unit of the maps.
     hot_spots : pandas.DataFrame, optional
-        Table from :func:`bench.analysis.maps.hot_spots`: positions marked and numbered.
+        Hot spots of each panel (:meth:`bench.analysis.maps.GridMaps.hot_spots`): every panel
+        marks and numbers only the rows of its own map (column ``map``), and rings those on
+        the edge of the scanned area.
     """
-    panels = [(f"rotation {rot:g} deg", maps.by_orientation[rot], rot)
-              for rot in sorted(maps.by_orientation)]
-    if len(panels) > 1:
-        panels.append(("combined", maps.combined, None))
-    vmin, vmax = _finite_range([p[1] for p in panels])
+    panels = maps.panels()
+    vmin, vmax = _finite_range([p[2] for p in panels])
     fig = Figure(figsize=(4.2 * len(panels) + 1.0, 3.9), dpi=100, layout="constrained")
     axes = np.atleast_1d(fig.subplots(1, len(panels)))
     use_photo = photo is not None and photo_points
-    mesh = None
-    for ax, (name, z, rot) in zip(axes, panels):
+    mesh, edge = None, False
+    for ax, (name, _, z) in zip(axes, panels):
         if use_photo:
             _draw_photo(ax, photo, photo_points)
         mesh = _map_panel(ax, maps.x_m, maps.y_m, z, cmap="magma", vmin=vmin, vmax=vmax,
                           outline_m=outline_m, alpha=0.7 if use_photo else 1.0, title=name)
-        _mark_spots(ax, hot_spots, rotation=rot)
+        own = None if hot_spots is None else hot_spots[hot_spots["map"] == name]
+        edge = _mark_spots(ax, own) or edge
         _panel_limits(ax, maps.x_m, maps.y_m, outline_m)
     fig.colorbar(mesh, ax=list(axes), label=f"{_unit_text(unit)} ({maps.what})", shrink=0.9)
     fig.suptitle(title)
+    if edge:
+        fig.supxlabel(f"(edge): {EDGE_NOTE}", fontsize=9)
     return _save(fig, path)
 
 
-def delta_map_png(path, x_m, y_m, delta_db, *, title: str, outline_m=None) -> Path:
-    """Map of a level change in dB (after minus before) with a symmetric diverging scale."""
+def delta_scale_db(delta_db) -> float:
+    """Half-range of a change map's colour scale, dB: the largest finite |change|, at least
+    :data:`DELTA_SCALE_MIN_DB`."""
     finite = np.abs(np.asarray(delta_db, float))
     finite = finite[np.isfinite(finite)]
-    span = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
+    return max(DELTA_SCALE_MIN_DB, float(finite.max()) if finite.size else 0.0)
+
+
+def delta_map_png(path, x_m, y_m, delta_db, *, title: str, outline_m=None) -> Path:
+    """Map of a level change in dB (after minus before) on a symmetric diverging scale.
+
+    The scale spans at least +-:data:`DELTA_SCALE_MIN_DB` (3 dB), more when the change is
+    larger, so a change of a few tenths of a dB shows as the small change it is instead of
+    filling the whole colour range.
+    """
+    span = delta_scale_db(delta_db)
     fig = Figure(figsize=(6.2, 4.8), dpi=100, layout="constrained")
     ax = fig.add_subplot()
     mesh = _map_panel(ax, np.asarray(x_m), np.asarray(y_m), delta_db, cmap="RdBu_r", vmin=-span,

@@ -245,7 +245,7 @@ class MapViews:
     Attributes
     ----------
     peaks : int
-        One map at each of the strongest flagged peaks (hot-spot frequencies), up to this many.
+        One map at each of the strongest emission peaks of a grid step, up to this many.
     freqs_hz : tuple of float
         Maps at these frequencies (nearest trace bin).
     bands_hz : tuple of (float, float)

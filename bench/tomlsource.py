@@ -683,7 +683,7 @@ def _length_message(kind: str, ctx: dict, value: Any) -> str:
 
 
 def quantity(dimension: str, *, positive: bool = False, non_negative: bool = False,
-             ) -> typing.Any:
+             radio: bool = False) -> typing.Any:
     """A model field type: a quantity string parsed by :func:`bench.units.parse` to SI.
 
     Parameters
@@ -692,9 +692,12 @@ def quantity(dimension: str, *, positive: bool = False, non_negative: bool = Fal
         A key of :data:`bench.units.DIMENSIONS` (``"frequency"``, ``"length"``, ...).
     positive, non_negative : bool
         Refuse zero/negative (or negative) values, naming the text as written.
+    radio : bool
+        A radio frequency: a non-zero value below 1 Hz is refused as a wrong prefix
+        (``"30 mHz"`` -> did you mean ``"30 MHz"``); see :func:`bench.units.parse`.
     """
     return typing.Annotated[float, pydantic.BeforeValidator(
-        _QuantityParser(dimension, positive, non_negative))]
+        _QuantityParser(dimension, positive, non_negative, radio))]
 
 
 def quantity_list(dimension: str, count: int, **kwargs: bool) -> typing.Any:
@@ -705,7 +708,8 @@ def quantity_list(dimension: str, count: int, **kwargs: bool) -> typing.Any:
 
 def _flags(kwargs: dict[str, bool]) -> dict[str, bool]:
     return {"positive": kwargs.get("positive", False),
-            "non_negative": kwargs.get("non_negative", False)}
+            "non_negative": kwargs.get("non_negative", False),
+            "radio": kwargs.get("radio", False)}
 
 
 @dataclass(frozen=True)
@@ -713,6 +717,7 @@ class _QuantityParser:
     dimension: str
     positive: bool = False
     non_negative: bool = False
+    radio: bool = False
 
     def __call__(self, value: Any) -> float:
         from bench import units  # leaf module; imported here to keep this module light
@@ -723,7 +728,7 @@ class _QuantityParser:
             raise bench_error(f"expected {article} {word} like "
                               f"{units.DIMENSIONS[self.dimension]}, found {format_value(value)}")
         try:
-            result = units.parse(value, self.dimension)
+            result = units.parse(value, self.dimension, radio=self.radio)
         except ConfigError as exc:
             raise bench_error(exc.message) from None
         if (self.positive and result <= 0) or (self.non_negative and result < 0):

@@ -4,7 +4,12 @@ Text such as ``"120 kHz"``, ``"2.5 mm"``, ``"-20 dBm"`` or ``"200 ms"`` enters t
 :func:`parse`; everything past that point is a plain float in SI units (Hz, m, s, deg) or in a
 named dB reference (dBm, dB, dBuV, dBuV/m, dBuA/m), with the unit in the variable name.
 
-The dB conversions follow the usual definitions (reference sheet §4):
+Unit spellings are exact: SI prefix and unit symbols are case-sensitive (SI Brochure, BIPM,
+9th edition 2019, section 3), so ``"30 mHz"`` is 30 millihertz, and a frequency that must be a
+radio frequency refuses it with the ``"30 MHz"`` probably meant.
+
+The dB conversions follow from the definitions of the dB units, the exact c and CODATA 2018
+mu0 (derived in docs/physics.md, section 1):
 
 * dBuV = dBm + 10*log10(Z/ohm) + 90, i.e. dBm + 106.99 for 50 ohm;
 * dBuA/m = dBuV/m - 20*log10(eta0), eta0 = 376.73 ohm (plane wave), i.e. minus 51.52 dB;
@@ -26,6 +31,8 @@ __all__ = [
     "MU0_H_PER_M",
     "EPS0_F_PER_M",
     "DIMENSIONS",
+    "RADIO_MIN_HZ",
+    "case_suggestion",
     "dimension_word",
     "parse",
     "format_hz",
@@ -45,28 +52,41 @@ MU0_H_PER_M = 1.25663706212e-6  # CODATA 2018
 EPS0_F_PER_M = 1.0 / (MU0_H_PER_M * C0_M_PER_S**2)
 ETA0_OHM = math.sqrt(MU0_H_PER_M / EPS0_F_PER_M)  # 376.730 ohm
 
-# unit spelling -> factor to SI (or offset for dB units: factor 1, same reference)
+# unit spelling -> factor to SI (or, for dB units, factor 1: the same reference). Spellings are
+# exact: SI prefix symbols and unit symbols are case-sensitive (SI Brochure, BIPM, 9th edition
+# 2019, section 3: m = milli but M = mega, k = kilo while K is no prefix; Hz, not hz). The order
+# in each table is the order of preference when a wrong case could mean two spellings ("mhz":
+# "MHz" before "mHz"). "u" for the micro sign is the usual plain-keyboard spelling (common
+# practice).
 _UNITS: dict[str, dict[str, float]] = {
-    "frequency": {"hz": 1.0, "khz": 1e3, "mhz": 1e6, "ghz": 1e9},
-    "length": {"m": 1.0, "cm": 1e-2, "mm": 1e-3, "um": 1e-6, "µm": 1e-6, "km": 1e3, "in": 0.0254},
+    "frequency": {"Hz": 1.0, "kHz": 1e3, "MHz": 1e6, "GHz": 1e9, "mHz": 1e-3},
+    "length": {"m": 1.0, "mm": 1e-3, "cm": 1e-2, "um": 1e-6, "µm": 1e-6, "km": 1e3, "in": 0.0254},
     "time": {"s": 1.0, "ms": 1e-3, "us": 1e-6, "µs": 1e-6, "ns": 1e-9, "min": 60.0, "h": 3600.0},
     "angle": {"deg": 1.0, "°": 1.0},
     "speed": {"mm/s": 1e-3, "m/s": 1.0, "mm/min": 1e-3 / 60.0, "cm/s": 1e-2},
     "angular_speed": {"deg/s": 1.0},
     "acceleration": {"mm/s2": 1e-3, "mm/s^2": 1e-3, "m/s2": 1.0, "m/s^2": 1.0},
-    "dbm": {"dbm": 1.0},
-    "db": {"db": 1.0},
-    "dbuv": {"dbuv": 1.0, "dbµv": 1.0},
-    "dbuv_per_m": {"dbuv/m": 1.0, "dbµv/m": 1.0},
-    "dbua_per_m": {"dbua/m": 1.0, "dbµa/m": 1.0},
-    "inductance": {"h": 1.0, "uh": 1e-6, "µh": 1e-6, "nh": 1e-9},
-    "capacitance": {"f": 1.0, "pf": 1e-12, "nf": 1e-9, "uf": 1e-6, "µf": 1e-6},
-    "resistance": {"ohm": 1.0, "Ω": 1.0, "kohm": 1e3},
-    "current": {"a": 1.0, "ma": 1e-3, "ua": 1e-6, "µa": 1e-6},
-    "voltage": {"v": 1.0, "mv": 1e-3, "uv": 1e-6, "µv": 1e-6},
+    "dbm": {"dBm": 1.0},
+    "db": {"dB": 1.0},
+    "dbuv": {"dBuV": 1.0, "dBµV": 1.0},
+    "dbuv_per_m": {"dBuV/m": 1.0, "dBµV/m": 1.0},
+    "dbua_per_m": {"dBuA/m": 1.0, "dBµA/m": 1.0},
+    "inductance": {"H": 1.0, "uH": 1e-6, "µH": 1e-6, "nH": 1e-9},
+    "capacitance": {"F": 1.0, "pF": 1e-12, "nF": 1e-9, "uF": 1e-6, "µF": 1e-6},
+    "resistance": {"ohm": 1.0, "Ω": 1.0, "kohm": 1e3, "kΩ": 1e3},
+    "current": {"A": 1.0, "mA": 1e-3, "uA": 1e-6, "µA": 1e-6},
+    "voltage": {"V": 1.0, "mV": 1e-3, "uV": 1e-6, "µV": 1e-6},
     "area": {"m2": 1.0, "cm2": 1e-4, "mm2": 1e-6},
-    "data_rate": {"b/s": 1.0, "kb/s": 1e3, "mb/s": 1e6},
+    "data_rate": {"B/s": 1.0, "kB/s": 1e3, "MB/s": 1e6},
 }
+
+# Valid spellings that are a slip where they cannot be meant: spelling -> (its name, the
+# spelling probably meant). A radio frequency in millihertz is a megahertz with the wrong case.
+_PREFIX_SLIPS = {"mHz": ("millihertz", "MHz")}
+
+#: Lowest frequency a sweep, an RBW, a span or a limit line can mean: below this a value is a
+#: wrong prefix (a millihertz written for a megahertz), never a radio frequency.
+RADIO_MIN_HZ = 1.0
 
 #: Example text for each dimension, used in error hints.
 DIMENSIONS: dict[str, str] = {
@@ -92,7 +112,9 @@ DIMENSIONS: dict[str, str] = {
 }
 
 _NUMBER = r"[-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?"
-_QUANTITY = re.compile(rf"^\s*({_NUMBER})\s*([^\s\d].*?)?\s*$")
+_QUANTITY = re.compile(rf"^\s*({_NUMBER})(\s*)([^\s\d].*?)?\s*$")
+# The Greek small letter mu typed for the micro sign: the same symbol to a reader.
+_GREEK_MU = "\u03bc"
 
 
 #: How a dimension is named in messages, where its key is not an English word.
@@ -116,8 +138,13 @@ def _a(dimension: str) -> str:
     return f"an {word}" if word[:1] in "aeiou" else f"a {word}"
 
 
-def parse(value: object, dimension: str) -> float:
+def parse(value: object, dimension: str, *, radio: bool = False) -> float:
     """Parse a quantity string into SI units (or the dB reference of ``dimension``).
+
+    Unit spellings are exact: SI prefix symbols and unit symbols are case-sensitive (SI
+    Brochure, BIPM, 9th edition 2019, section 3), so ``"30 mHz"`` is 30 millihertz and
+    ``"30 MHz"`` 30 megahertz. A spelling that differs from a known one only in case
+    (``"10 KHz"``, ``"1 ghz"``) is refused with the spelling meant.
 
     Parameters
     ----------
@@ -126,6 +153,10 @@ def parse(value: object, dimension: str) -> float:
         matters, the file must say it.
     dimension : str
         One of :data:`DIMENSIONS` (``"frequency"``, ``"length"``, ``"time"``, ``"dbm"``, ...).
+    radio : bool
+        Only with ``"frequency"``: the value is a radio frequency (a sweep limit, RBW, VBW,
+        step, span, limit-line edge, table row), so a non-zero value below
+        :data:`RADIO_MIN_HZ` (1 Hz) is refused as a wrong prefix.
 
     Returns
     -------
@@ -135,8 +166,21 @@ def parse(value: object, dimension: str) -> float:
     Raises
     ------
     UnitError
-        One line naming the text, the dimension expected and an example.
+        One line naming the text, the dimension expected and an example or the spelling meant.
     """
+    if radio and dimension != "frequency":
+        raise ValueError(f"radio=True applies to frequencies, not to {dimension!r}")
+    number, space, unit = _split(value, dimension)
+    result = float(number) * _factor(value, number, space, unit, dimension)
+    if not math.isfinite(result):
+        raise UnitError(f"expected a finite {dimension_word(dimension)}, found {value!r}")
+    if radio and 0.0 < abs(result) < RADIO_MIN_HZ:
+        raise UnitError(_sub_hertz_message(value, number, space, unit))
+    return result
+
+
+def _split(value: object, dimension: str) -> tuple[str, str, str]:
+    """(number text, the space after it, unit text) of a quantity string; refuses the rest."""
     example = DIMENSIONS[dimension]
     if isinstance(value, bool) or not isinstance(value, (str, int, float)):
         raise UnitError(f"expected {_a(dimension)} like {example}, found {value!r}")
@@ -148,23 +192,53 @@ def parse(value: object, dimension: str) -> float:
     match = _QUANTITY.match(value)
     if not match:
         raise UnitError(f"expected {_a(dimension)} like {example}, found {value!r}")
-    number, unit = match.group(1), (match.group(2) or "")
+    number, space, unit = match.group(1), match.group(2), (match.group(3) or "")
     if not unit:
         raise UnitError(
             f"expected {_a(dimension)} like {example}, found {value!r} with no unit"
         )
+    return number, space, unit
+
+
+def _factor(value: str, number: str, space: str, unit: str, dimension: str) -> float:
+    """The factor of an exactly spelt unit, or a UnitError naming the spelling meant."""
     table = _UNITS[dimension]
-    factor = table.get(unit.strip().lower().replace(" ", ""))
-    if factor is None:
-        known = ", ".join(sorted({u for u in table}))
+    spelt = unit.strip().replace(" ", "").replace(_GREEK_MU, "µ")
+    if spelt in table:
+        return table[spelt]
+    meant = case_suggestion(spelt, table)
+    if meant is not None:
         raise UnitError(
-            f"expected {_a(dimension)} like {example}, found unit {unit!r} in {value!r} "
-            f"(known: {known})"
+            f"expected {_a(dimension)} like {DIMENSIONS[dimension]}, found {value.strip()}; "
+            f"did you mean {number}{space}{meant}? (unit symbols and SI prefixes are "
+            "case-sensitive)"
         )
-    result = float(number) * factor
-    if not math.isfinite(result):
-        raise UnitError(f"expected a finite {dimension_word(dimension)}, found {value!r}")
-    return result
+    known = ", ".join(table)
+    raise UnitError(
+        f"expected {_a(dimension)} like {DIMENSIONS[dimension]}, found unit {unit!r} in "
+        f"{value!r} (known: {known})"
+    )
+
+
+def case_suggestion(spelt: str, spellings) -> str | None:
+    """The first of ``spellings`` equal to ``spelt`` but for case, or None.
+
+    ``case_suggestion("KHz", ["Hz", "kHz", "MHz"]) == "kHz"``; the order of ``spellings`` is the
+    order of preference (``"mhz"`` suggests ``"MHz"`` when it comes before ``"mHz"``).
+    """
+    folded = spelt.casefold()
+    return next((s for s in spellings if s.casefold() == folded and s != spelt), None)
+
+
+def _sub_hertz_message(value: str, number: str, space: str, unit: str) -> str:
+    """Why a radio frequency below 1 Hz is refused, with the megahertz meant for millihertz."""
+    text = value.strip()
+    slip = _PREFIX_SLIPS.get(unit.strip())
+    if slip is None:
+        return f"expected a radio frequency of at least {RADIO_MIN_HZ:g} Hz, found {text}"
+    name, meant = slip
+    return (f"expected a radio frequency of at least {RADIO_MIN_HZ:g} Hz, found {text} ({name}); "
+            f"did you mean {number}{space}{meant}?")
 
 
 def format_hz(freq_hz: float) -> str:

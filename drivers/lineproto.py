@@ -4,8 +4,8 @@ Controllers of this kind take one command per line and acknowledge each with a l
 with ``ok`` (possibly followed by extra text, e.g. ``ok T:21.2``). Before the acknowledgement
 they may send information lines (a position report), keep-alive lines while a long move runs
 (``busy``), or, instead of ``ok``, an error line (``error:N``, ``!! text``, ``Error:text``).
-The host must wait for the acknowledgement before sending the next line (reference sheet §10,
-"One line per command ... Wait for ok").
+The host must wait for the acknowledgement before sending the next line (the serial streaming
+rule of G-code firmware: one line per command, wait for ``ok``; common practice, from memory).
 
 Some controllers answer a few commands with one line and no ``ok`` at all, typically a status
 query they take as a real-time character (``?`` answered by ``<Idle|MPos:...>`` only). A
@@ -16,7 +16,7 @@ What the lines look like is data: a :class:`Handshake` validated from a profile'
 :func:`bench.drivers.profile.load_profile`). This module only runs the conversation:
 
 * :meth:`LineConversation.read_banner` waits for the start-up banner after the port opens
-  (boards that reset when the port opens print one; reference sheet §10);
+  (boards that reset when the port opens print one; common practice, from memory);
 * :meth:`LineConversation.command` sends a line and collects the reply under one overall
   deadline (pyserial's timeout is per read call; pitfalls: pyserial);
 * optional line numbers and checksums ``N<n> <command>*<cs>`` with a bounded number of
@@ -53,7 +53,8 @@ _MAX_RESENDS = 3
 def checksum(text: str) -> int:
     """XOR of all bytes of ``text`` (the part of a numbered line before ``*``).
 
-    Reference sheet §10: ``cs = XOR of all bytes before '*'``; ``N0 M110 N0`` gives 125.
+    ``cs = XOR of all bytes before '*'`` (line checksums of printer-style G-code firmware, from
+    memory); ``N0 M110 N0`` gives 125 (derived: the XOR of its bytes).
     """
     value = 0
     for byte in text.encode("ascii"):
@@ -62,7 +63,7 @@ def checksum(text: str) -> int:
 
 
 def numbered_line(line_number: int, command: str) -> str:
-    """``N<line_number> <command>*<checksum>`` (reference sheet §10)."""
+    """``N<line_number> <command>*<checksum>`` (numbered lines of G-code firmware, from memory)."""
     body = f"N{line_number} {command}"
     return f"{body}*{checksum(body)}"
 
@@ -229,7 +230,7 @@ class LineConversation:
     # ----------------------------------------------------------------------------- command
 
     def reset_line_numbers(self, reset_command: str = "M110 N0") -> None:
-        """Reset the controller's line counter (reference sheet §10: ``M110 N0``)."""
+        """Reset the controller's line counter (``M110 N0`` in printer firmware, from memory)."""
         self._next_line_number = 0
         self.command(reset_command)
 

@@ -435,7 +435,7 @@ class Stage:
     def _run_linear(self, start_m, waypoints, feed_m_per_s: float) -> None:
         """Send linear moves through ``waypoints`` (only the axes that change), then wait."""
         self._position = None  # unknown until verified
-        feed_text = f"{feed_m_per_s * 60e3:.0f}"  # mm/min (reference sheet §10: F in units per minute)
+        feed_text = f"{feed_m_per_s * 60e3:.0f}"  # mm/min (NIST RS274NGC v3: F in units per minute under G94)
         total_s = 0.0
         previous = start_m
         for point in waypoints:

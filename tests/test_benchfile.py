@@ -32,9 +32,9 @@ def test_demo_bench_values_in_si():
     assert stage.board_origin_m == pytest.approx((0.06, 0.04, 0.015))
     assert stage.safe_z_m == pytest.approx(0.04)
     assert stage.max_feed_m_per_s == pytest.approx(0.05)
-    assert bench.site.distance_m == 3.0  # 3 m test distance (reference sheet §3, CISPR 32)
-    assert bench.mast.height_limits_m == (1.0, 4.0)  # 1-4 m height scan (sheet §3)
-    assert bench.turntable.azimuth_limits_deg == (0.0, 360.0)  # 0-360 deg (sheet §3)
+    assert bench.site.distance_m == 3.0  # 3 m test distance (CISPR 32 Table A.4 clause A4.2)
+    assert bench.mast.height_limits_m == (1.0, 4.0)  # 1-4 m height scan (CISPR 16-2-3)
+    assert bench.turntable.azimuth_limits_deg == (0.0, 360.0)  # 0-360 deg (CISPR 16-2-3)
     assert {n: (p.kind, p.tool) for n, p in bench.probes.items()} == {
         "hloop-10mm": ("h-loop", 1), "hloop-3mm": ("h-loop", 2), "eprobe": ("e-probe", 4)}
     assert bench.warnings == ()

@@ -143,6 +143,17 @@ def test_defaults():
     assert spur.tolerance_ppm == 20.0
 
 
+def test_a_burst_repetition_may_be_written_in_millihertz():
+    # a packet every 2 s repeats at 500 mHz: milli is m, mega is M (SI Brochure, BIPM, 9th
+    # edition 2019, section 3), and a repetition frequency below 1 Hz is plausible
+    text = _demo_text().replace('repetition = "10 Hz"', 'repetition = "500 mHz"')
+    board = parse_board(text, "x.toml")
+    burst = next(e for e in board.emitters if e.kind == "burst")
+    assert burst.repetition_hz == pytest.approx(0.5)
+    with pytest.raises(ConfigError, match="did you mean 500 MHz"):
+        parse_board(text.replace('"500 mHz"', '"500 mhz"'), "x.toml")
+
+
 def test_antenna_gain_interpolates_in_log_frequency():
     site = demo_board().site
     # the geometric mean of 30 and 60 MHz lies halfway in log f, so halfway in dB; beyond the

@@ -121,16 +121,20 @@ def test_compare_runs_writes_html_with_summary(tmp_path):
                       [(48e6, 53.3, "fail"), (100e6, 45.0, "fail")], grid_peak=60.0)
     after = make_run(tmp_path, "after", {48e6: 40.0, 300e6: 41.0},
                      [(48e6, 43.3, "fail"), (300e6, 41.0, "fail")], grid_peak=48.0)
-    path = compare_runs(before, after)
+    result = compare_runs(before, after)
+    path = result.path
     assert path == after / f"compare-{before.name}" / "compare.html"
     text = path.read_text(encoding="utf-8")
     summary = (path.parent / "summary.txt").read_text(encoding="utf-8")
+    assert summary.splitlines() == result.lines()
     # matched suspect 48 MHz: 53.3 -> 43.3 = -10.0 dB (constructed)
-    assert "largest improvement: -10.0 dB at 48.0 MHz" in summary
+    assert "matched suspects (1 suspect): largest improvement -10.0 dB at 48.0 MHz" in summary
     assert "matched 1, new 1, vanished 1" in summary
     # grid: every node drops by the injected 12 dB (60 -> 48 dBuV at the same bin)
-    assert "nf: largest improvement: -12.0 dB at 50.0 MHz" in summary
-    assert "Largest map improvement -12.0 dB" in text
+    (nf,) = [line for line in result.lines() if line.startswith("nf: ")]
+    assert "spectrum peaks (1 peak): largest improvement -12.0 dB at 50.0 MHz, no increase" in nf
+    assert "combined map (20 positions): largest improvement -12.0 dB at x = " in nf
+    assert "combined map (20 positions): largest improvement -12.0 dB" in text
     assert len(re.findall(r'src="data:image/png;base64,', text)) == 3
     assert not re.search(r'(src|href)\s*=\s*["\']?\s*(https?:)?//', text, re.I)
     assert "Hot spots before" in text and "Hot spots after" in text
@@ -142,3 +146,92 @@ def test_unit_mismatch_is_refused(tmp_path):
     with pytest.raises(AnalysisError, match=r"step 'pre': cannot compare dbuv_per_m \(before\) "
                                             r"with dbuv \(after\)"):
         compare_runs(before, after, out=tmp_path / "cmp")
+
+
+# ----------------------------------------------------------------------------- one summary
+
+PAIR_SEQUENCE = """
+schema = 1
+name = "compare-pair"
+[sweeps.cd]
+start = "30 MHz"
+stop = "1 GHz"
+rbw = "120 kHz"
+[sweeps.nf]
+start = "30 MHz"
+stop = "300 MHz"
+rbw = "1 MHz"
+points = 541
+[[steps]]
+kind = "sweep"
+label = "far"
+sweep = "cd"
+limit = "cispr32-class-b-3m"
+[[steps]]
+kind = "grid"
+label = "buck-area"
+sweep = "nf"
+probe = "hloop-10mm"
+area = { x = ["60 mm", "100 mm"], y = ["0 mm", "40 mm"] }
+step_size = "10 mm"
+height = "3 mm"
+"""
+
+
+@pytest.mark.slow
+def test_the_page_summary_is_the_terminal_summary(tmp_path, capsys):
+    import html
+    from importlib import resources
+    from pathlib import Path
+
+    from bench.cli import main
+
+    demo = Path(str(resources.files("bench.demo")))
+    seq = tmp_path / "pair.toml"
+    seq.write_text(PAIR_SEQUENCE, encoding="utf-8")
+    folders = []
+    for name, board in (("before", "demo-board.toml"), ("after", "demo-board-fixed.toml")):
+        assert main(["run", str(seq), "--sim", "--board", str(demo / board), "--no-plots",
+                     "--out", str(tmp_path / name)]) == 0
+        (folder,) = list((tmp_path / name).iterdir())
+        folders.append(folder)
+    capsys.readouterr()
+    assert main(["compare", str(folders[0]), str(folders[1])]) == 0
+    printed = capsys.readouterr().out.strip().splitlines()
+    terminal, page_path = printed[:-1], Path(printed[-1])
+    text = page_path.read_text(encoding="utf-8")
+    (block,) = re.findall(r'<ul class="summary">(.*?)</ul>', text)
+    on_page = [html.unescape(item) for item in re.findall(r"<li>(.*?)</li>", block)]
+    # the same lines, hence the same numbers, on the terminal and at the top of the page
+    assert terminal == on_page and len(terminal) == 2
+    number = r"[-+]?\d+\.\d+"
+    assert re.findall(number, " ".join(terminal)) == re.findall(number, " ".join(on_page))
+    # the map sentence of the grid section is the map part of the grid's summary line
+    (grid_line,) = [line for line in terminal if line.startswith("buck-area: ")]
+    (sentence,) = re.findall(r"<p>Map change, [^:]*: (.*?)\.</p>", text)
+    assert html.unescape(sentence) in grid_line
+    # the tighter buck loop (0.5 -> 0.2 cm2) lowers its moment by 20*log10(0.2/0.5) = -7.96 dB
+    # (derived: moment = current x loop area, docs/board-format.md): a map improvement shows
+    improvement = float(re.search(r"combined map \(25 positions\): largest improvement "
+                                  rf"({number}) dB", grid_line).group(1))
+    assert improvement <= -5.0
+
+
+def test_change_extremes_say_no_change_below_the_shown_resolution():
+    from bench.analysis.changes import ChangeExtremes, StepChange
+
+    # changes of a few hundredths of a dB print as 0.0 dB: they are "no change" (constructed)
+    small = ChangeExtremes.of("spectrum peaks", "peak", [0.04, -0.04, np.nan], ["a", "b", "c"])
+    assert small.count == 2 and small.text() == "spectrum peaks (2 peaks): no change"
+    one = ChangeExtremes.of("matched suspects", "suspect", [-8.74], ["48.0 MHz"])
+    assert one.text() == ("matched suspects (1 suspect): largest improvement -8.7 dB at "
+                          "48.0 MHz, no increase")
+    # equal changes (to float noise) name the first place
+    ties = ChangeExtremes.of("combined map", "position", [-3.0 - 1e-12, -3.0, -3.0 + 1e-12],
+                             ["p1", "p2", "p3"])
+    assert ties.improvement.where == "p1"
+    assert ChangeExtremes.of("x", "y", [np.nan], ["p"]) is None
+    line = StepChange("nf", "grid", (one,), (1, 0, 2)).line()
+    assert line == ("nf: matched suspects (1 suspect): largest improvement -8.7 dB at 48.0 MHz, "
+                    "no increase; suspects matched 1, new 0, vanished 2")
+    assert StepChange("nf", "grid", ()).line() == "nf: no emissions to compare"

@@ -12,7 +12,8 @@ from bench.ieee488 import decode_float32, encode_block, parse_block
 
 
 def test_reference_example_little_endian():
-    # reference sheet §9: b'#212' + struct.pack('<3f', -20.5, -30.25, -99.0) decodes to the same values
+    # IEEE 488.2 8.7.9 (derived): b'#212' + struct.pack('<3f', -20.5, -30.25, -99.0) decodes to
+    # the same values
     data = b"#212" + struct.pack("<3f", -20.5, -30.25, -99.0) + b"\n"
     payload, consumed = parse_block(data)
     assert consumed == 16

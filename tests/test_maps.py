@@ -67,7 +67,7 @@ def test_peak_of_constructed_map_is_at_the_source(tmp_path):
     m = maps.grid_maps(run, "scan", freq_hz=50.2e6)  # nearest bin is 50 MHz
     x, y, level = m.peak()
     assert (x, y) == pytest.approx((0.02, 0.01), abs=1e-9)
-    # H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)) (reference sheet §3.2)
+    # H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)) (probe factor AF_H = H/V, common practice)
     assert level == pytest.approx(60.0 + loop_factor_db(50e6), abs=1e-4)
     assert m.unit == "dbua_per_m"
     np.testing.assert_allclose(m.x_m, [0.0, 0.01, 0.02, 0.03, 0.04], atol=1e-12)
@@ -115,7 +115,7 @@ def test_band_maximum_and_e_probe_combination(tmp_path):
         maps.grid_maps(run, "scan", freq_hz=1e9)
 
 
-def test_hot_spots_find_two_lines_at_their_positions(tmp_path):
+def test_emission_peaks_find_two_lines_at_their_positions(tmp_path):
     def levels(x, y, rot):
         out = np.zeros(POINTS)
         # line A, 50 MHz, strongest at (10 mm, 20 mm) seen by the 0-deg loop
@@ -127,8 +127,8 @@ def test_hot_spots_find_two_lines_at_their_positions(tmp_path):
         return out
 
     run = make_grid_run(tmp_path, levels)
-    table = maps.hot_spots(run, "scan", prominence_db=6.0)
-    assert list(table.columns) == list(maps.HOT_SPOT_COLUMNS)
+    table = maps.emission_peaks(run, "scan", prominence_db=6.0)
+    assert list(table.columns) == list(maps.EMISSION_COLUMNS)
     assert len(table) == 2
     a, b = table.iloc[0], table.iloc[1]
     # constructed: peak bins 20 and 90 of a 1 MHz grid from 30 MHz
@@ -138,7 +138,7 @@ def test_hot_spots_find_two_lines_at_their_positions(tmp_path):
     assert a.level == pytest.approx(55.0 + loop_factor_db(50e6), abs=1e-4)
     assert b.level == pytest.approx(45.0 + loop_factor_db(120e6), abs=1e-4)
     assert table["level"].is_monotonic_decreasing
-    assert len(maps.hot_spots(run, "scan", top=1)) == 1
+    assert len(maps.emission_peaks(run, "scan", top=1)) == 1
 
 
 def test_runview_corrects_with_the_manifest_chain(tmp_path):
@@ -146,7 +146,7 @@ def test_runview_corrects_with_the_manifest_chain(tmp_path):
                         rotations=(0.0,))
     spec = runview.corrected_spectrum(run, "scan")
     np.testing.assert_allclose(spec.freq_hz, FREQ)
-    expected = line(100e6, 40.0, floor_db=5.0) + loop_factor_db(FREQ)  # reference sheet §3.2
+    expected = line(100e6, 40.0, floor_db=5.0) + loop_factor_db(FREQ)  # AF_H = H/V
     np.testing.assert_allclose(spec.level, expected, atol=1e-4)
     assert spec.unit == "dbua_per_m" and "loop" in spec.chain_text
     assert runview.step_chain(run, "scan").result_quantity == "dbua_per_m"
@@ -188,10 +188,10 @@ def test_step_limit_extrapolation_and_near_field_warning(tmp_path):
     warnings = []
     limit = runview.step_limit(run, "pre", warnings=warnings)
     # CISPR 32 Table A.4 class B 10 m: 30 dBuV/m at 30-230 MHz; 10 m -> 1 m at 20 dB/decade
-    # adds 20 dB (reference sheet §3.1)
+    # adds 20 dB (FCC 47 CFR 15.31(f)(1), 20 dB/decade)
     assert limit.level("quasi-peak", 100e6) == pytest.approx(30.0 + 20.0, abs=1e-9)
     assert limit.distance_m == 1.0
-    # lambda/2pi at 30 MHz = 1.59 m > 1 m (reference sheet §5.1): a near-field warning
+    # lambda/2pi at 30 MHz = 1.59 m > 1 m (Ott; derived): a near-field warning
     assert any("lambda/2pi" in w for w in warnings)
 
 
@@ -236,7 +236,7 @@ def test_map_png_with_registered_photo(tmp_path):
               {"pixel": [79, 59], "board_m": [0.04, 0.0]}]
     out = map_png(tmp_path / "map.png", m, outline_m=[[0, 0], [0.04, 0], [0.04, 0.03], [0, 0.03]],
                   photo=photo, photo_points=points, title="scan", unit=m.unit,
-                  hot_spots=maps.hot_spots(run, "scan"))
+                  hot_spots=m.hot_spots())
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec §5.2)
 
 
@@ -255,7 +255,7 @@ def test_segments_sharing_an_edge_join_into_one_axis(tmp_path):
     freq, level = runview.join_segments(*run.step_spectrum("scan"))
     assert np.all(np.diff(freq) > 0) and freq.size == POINTS + 100
     assert level[POINTS - 1] == pytest.approx(3.0)  # the louder reading of the shared bin
-    spots = maps.hot_spots(run, "scan")
+    spots = maps.emission_peaks(run, "scan")
     assert set(np.round(spots["freq_hz"] / 1e6)) == {100.0, 350.0}
     # factor linear in log10(f) per table interval (transducers.py docstring):
     # 350 MHz: 30 dBuV + 30 + 20*log10(350/300) = 61.34; 100 MHz: 40 dBuV + 10 + 20*log10(100/30)
@@ -266,3 +266,99 @@ def test_segments_sharing_an_edge_join_into_one_axis(tmp_path):
     assert second.level == pytest.approx(40.0 + 10.0 + 20.0 * math.log10(100 / 30), abs=1e-4)
     m = maps.grid_maps(run, "scan", freq_hz=350e6)
     assert np.isfinite(m.combined).sum() == 1 and m.peak()[:2] == pytest.approx((0.04, 0.03))
+
+
+# ----------------------------------------------------------------------------- hot spots per map
+
+AXIS_X = np.arange(9) * 0.005
+AXIS_Y = np.arange(7) * 0.005
+
+
+def cone(x0, y0, peak_db, slope_db_per_m=2000.0):
+    """A source on the 9 x 7 grid (5 mm pitch): level falling linearly with distance."""
+    xx, yy = np.meshgrid(AXIS_X, AXIS_Y)
+    return peak_db - slope_db_per_m * np.hypot(xx - x0, yy - y0)
+
+
+def test_a_weaker_second_source_is_a_hot_spot_of_its_own():
+    # constructed: 60 dB at (10, 15) mm and 50 dB at (30, 15) mm, 2 dB per mm, floor 20 dB
+    z = np.maximum(np.maximum(cone(0.01, 0.015, 60.0), cone(0.03, 0.015, 50.0)), 20.0)
+    spots = maps.hot_spots(AXIS_X, AXIS_Y, z)
+    assert list(spots.columns) == list(maps.HOT_SPOT_COLUMNS)
+    np.testing.assert_allclose(spots[["x_m", "y_m"]].to_numpy(), [[0.01, 0.015], [0.03, 0.015]],
+                               atol=1e-12)
+    assert spots["rank"].tolist() == [1, 2] and spots["level"].tolist() == [60.0, 50.0]
+    # prominence: the col between them is 40 dB (x = 20 and 25 mm on y = 15 mm), so the weaker
+    # peak stands 50 - 40 = 10 dB; the highest one 60 - 20 (the lowest level) = 40 dB.
+    assert spots["prominence_db"].tolist() == pytest.approx([40.0, 10.0])
+    assert not spots["at_edge"].any()
+    # a dip of less than 6 dB does not separate two sources (HOT_SPOT_PROMINENCE_DB): a broad
+    # 44 dB bump (0.5 dB per mm) meets the big cone at 40 dB (x = 20 mm): 4 dB of prominence
+    shallow = np.maximum(np.maximum(cone(0.01, 0.015, 60.0), cone(0.03, 0.015, 44.0, 500.0)),
+                         20.0)
+    assert maps.peak_prominences(shallow)[3 * 9 + 6] == pytest.approx(4.0)
+    assert len(maps.hot_spots(AXIS_X, AXIS_Y, shallow)) == 1
+
+
+def test_prominence_of_a_flat_top_counts_it_once_and_nan_blocks_paths():
+    z = np.full((3, 5), 10.0)
+    z[1, 1] = z[1, 2] = 30.0  # a flat top of two positions
+    assert maps.peak_prominences(z) == {6: 20.0}
+    # an unmeasured column splits the map: each side has its own highest peak
+    z = np.array([[10.0, 40.0, np.nan, 20.0, 35.0]])
+    assert maps.peak_prominences(z) == {1: 30.0, 4: 15.0}
+
+
+def test_hot_spots_on_the_border_of_the_measured_area_are_flagged():
+    z = np.maximum(np.maximum(cone(0.0, 0.015, 60.0), cone(0.025, 0.015, 55.0)), 20.0)
+    spots = maps.hot_spots(AXIS_X, AXIS_Y, z)
+    edge = spots.set_index("x_m")["at_edge"]
+    assert bool(edge[0.0]) and not bool(edge[0.025])
+    # a neighbour not measured (a polygon scan) is a border too
+    z[3, 6] = np.nan
+    spots = maps.hot_spots(AXIS_X, AXIS_Y, z)
+    assert spots["at_edge"].all()
+
+
+def test_a_map_of_noise_has_no_hot_spot():
+    # Rayleigh envelope readings in dB (seeded): a noise bump exceeds the median by 12 dB with
+    # probability 2**-(10**1.2) = 1.7e-5 per position (derived in docs/physics.md, section 4)
+    rng = np.random.default_rng(7)
+    noise = 20.0 * np.log10(rng.rayleigh(1.0, size=(40, 50)))
+    assert maps.hot_spots(np.arange(50) * 0.005, np.arange(40) * 0.005, noise).empty
+    assert maps.hot_spots(AXIS_X, AXIS_Y, np.full((7, 9), 30.0)).empty  # flat: nothing stands out
+
+
+def test_each_map_has_its_own_hot_spots(tmp_path):
+    # line at 50 MHz: the 0-deg loop sees a source at (10, 20) mm, the 90-deg loop one at
+    # (30, 0) mm, each 30 dB down at the other's place (constructed)
+    def levels(x, y, rot):
+        out = np.zeros(POINTS)
+        x0, y0 = (0.01, 0.02) if rot == 0.0 else (0.03, 0.0)
+        out[20] = 60.0 - 1500.0 * math.hypot(x - x0, y - y0)
+        return out
+
+    run = make_grid_run(tmp_path, levels)
+    m = maps.grid_maps(run, "scan", freq_hz=50e6)
+    assert [name for name, _, _ in m.panels()] == ["rotation 0 deg", "rotation 90 deg",
+                                                   "combined"]
+    spots = m.hot_spots()
+    by_map = {name: sorted(map(tuple, np.round(group[["x_m", "y_m"]].to_numpy(), 9)))
+              for name, group in spots.groupby("map")}
+    assert by_map["rotation 0 deg"] == [(0.01, 0.02)]
+    assert by_map["rotation 90 deg"] == [(0.03, 0.0)]
+    assert by_map["combined"] == [(0.01, 0.02), (0.03, 0.0)]
+    # (30, 0) mm lies on the border of the 5 x 4 grid: flagged on the maps that show it
+    assert spots.query("x_m > 0.025")["at_edge"].all()
+    assert not spots.query("x_m < 0.015")["at_edge"].any()
+    assert m.hot_spots("rotation 90 deg")["map"].unique().tolist() == ["rotation 90 deg"]
+
+
+def test_change_map_scale_is_at_least_three_db():
+    from bench.plots import DELTA_SCALE_MIN_DB, delta_scale_db
+
+    # a 0.2 dB change must look small: the colour scale keeps +-3 dB (issue: change maps)
+    assert DELTA_SCALE_MIN_DB == 3.0
+    assert delta_scale_db([[0.2, -0.1], [np.nan, 0.0]]) == 3.0
+    assert delta_scale_db([[-8.7, 1.0]]) == pytest.approx(8.7)
+    assert delta_scale_db([[np.nan]]) == 3.0

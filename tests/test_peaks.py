@@ -1,7 +1,7 @@
 """Peak search, suspects and ambient flagging on constructed spectra.
 
 Traces are built from known lines on a noise floor drawn from a seeded RNG. A line's shape is
-the Gaussian RBW response, 6*(2*df/B6)^2 dB down at offset df (reference sheet §1.7), added in
+the Gaussian RBW response, 6*(2*df/B6)^2 dB down at offset df (derived, docs/physics.md section 8), added in
 power to the floor. Expected peaks are the lines we put in; scipy.signal.find_peaks is used as
 the reference where its semantics apply directly.
 """
@@ -28,7 +28,7 @@ def spectrum(freq_hz, lines, *, floor_db=20.0, noise_db=1.0, b6_hz=1 * MHZ, seed
     floor = floor_db + noise_db * rng.standard_normal(freq_hz.size)
     power = 10 ** (floor / 10)
     for f0, level in lines:
-        shape_db = level - 6.0 * (2.0 * (freq_hz - f0) / b6_hz) ** 2  # sheet §1.7
+        shape_db = level - 6.0 * (2.0 * (freq_hz - f0) / b6_hz) ** 2  # Gaussian RBW (derived)
         power = power + 10 ** (shape_db / 10)
     return 10 * np.log10(power)
 

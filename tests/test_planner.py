@@ -68,8 +68,9 @@ def grid_step(extra: str = "", area: str = RECT):
 # --------------------------------------------------------------------------- frequency axis
 
 
-def test_scalloping_matches_reference_table():
-    # reference sheet §1.7 table: step B6/2 -> 1.50 dB, B6/3 -> 0.67 dB, B6/4 -> 0.38 dB
+def test_scalloping_matches_derived_table():
+    # Gaussian RBW, worst case at step/2 (derived, docs/physics.md section 8): step B6/2 ->
+    # 1.50 dB, B6/3 -> 0.67 dB, B6/4 -> 0.38 dB
     # (the table gives two decimals, so compare at two decimals)
     b6_hz = 120e3
     table = {2: "1.50", 3: "0.67", 4: "0.38"}
@@ -106,9 +107,11 @@ def test_points_honour_the_analyzer_minimum(tmp_path):
 
 
 @pytest.mark.parametrize("start_hz, stop_hz, rbw_hz, expected_s", [
-    (30e6, 1e9, 120e3, 0.168),   # reference sheet §8: 30-1000 MHz @ 120 kHz, k = 2.5
-    (150e3, 30e6, 9e3, 0.93),    # reference sheet §8: 0.15-30 MHz @ 9 kHz
-    (0.0, 1e9, 1e6, 2.5e-3),     # reference sheet §8: 1 GHz span @ 1 MHz
+    # ST = k span / RBW^2 with k = 2.5 (Witte; Engelson; a swept-analyzer application note),
+    # the values derived:
+    (30e6, 1e9, 120e3, 0.168),   # 30-1000 MHz @ 120 kHz
+    (150e3, 30e6, 9e3, 0.93),    # 0.15-30 MHz @ 9 kHz
+    (0.0, 1e9, 1e6, 2.5e-3),     # 1 GHz span @ 1 MHz
 ])
 def test_sweep_time_matches_reference_examples(start_hz, stop_hz, rbw_hz, expected_s):
     caps = AnalyzerCaps(sweep_time_k=2.5, min_sweep_time_s=1e-3)
@@ -120,7 +123,7 @@ def test_sweep_time_floor_and_narrow_vbw():
     caps = AnalyzerCaps(sweep_time_k=2.5, min_sweep_time_s=1e-3)
     # 1 MHz span at 1 MHz RBW: 2.5e-6 s < 1 ms floor
     assert sweep_time_s(1e6, 1e6, 3e6, caps) == 1e-3
-    # VBW < RBW: ST = k span / (RBW VBW) (reference sheet §8, from memory)
+    # VBW < RBW: ST = k span / (RBW VBW) (from memory)
     # 2.5 * 970e6 / (120e3 * 12e3) = 1.684 s
     assert sweep_time_s(970e6, 120e3, 12e3, caps) == pytest.approx(1.684, rel=1e-3)
 
@@ -136,7 +139,7 @@ def test_max_hold_count_multiplies_sweep_time(tmp_path):
     sweep = sequence_from(tmp_path, sweeps, '[[steps]]\nkind = "sweep"\nlabel = "a"\n'
                           'sweep = "s"\n').sweeps["s"]
     segments = segment_sweep(sweep, AnalyzerCaps(max_points=40001))
-    # 5 sweeps x 2.5 * 970e6 / 120e3^2 = 5 x 0.16840 s (reference sheet §8 formula)
+    # 5 sweeps x 2.5 * 970e6 / 120e3^2 = 5 x 0.16840 s (ST = k span / RBW^2, Witte)
     assert segments[0].est_sweep_time_s == pytest.approx(5 * 2.5 * 970e6 / 120e3**2)
     assert segments[0].trace_mode == "max-hold" and segments[0].count == 5
 
@@ -146,7 +149,7 @@ def test_coarse_step_warns_with_worst_case_scalloping(tmp_path):
     sequence = sequence_from(tmp_path, sweeps, '[[steps]]\nkind = "sweep"\nlabel = "a"\n'
                              'sweep = "s"\n')
     plan = make_plan(sequence, CAPS)
-    # step = 270 MHz / 1000 = 270 kHz; 6 * (2 * 135 kHz / 120 kHz)^2 = 30.375 dB (sheet §1.7)
+    # step = 270 MHz / 1000 = 270 kHz; 6 * (2 * 135 kHz / 120 kHz)^2 = 30.375 dB (Gaussian RBW, derived)
     assert any("worst-case scalloping 30.38 dB" in w for w in plan.warnings)
 
 

@@ -69,7 +69,8 @@ def build_run(tmp_path):
         for y in np.arange(4) * 0.01:
             for x in np.arange(5) * 0.01:
                 levels = np.zeros(NF_POINTS)
-                levels[20] = 50.0 - 400.0 * np.hypot(x - 0.02, y - 0.01)
+                # a source at (20 mm, 10 mm) falling 1.5 dB per mm (constructed)
+                levels[20] = 50.0 - 1500.0 * np.hypot(x - 0.02, y - 0.01)
                 run.add_trace(_meta(action, "grid", "grid", 30e6, 300e6, NF_POINTS, x_m=float(x),
                                     y_m=float(y), z_m=0.003, rotation_deg=rot), levels,
                               completes_action=True)
@@ -130,10 +131,12 @@ def test_report_tables_events_chain_and_missing_step(report):
     _, _, text = report
     # results table: 48 MHz in MHz with margin, and the status class on the row
     assert "48.0000" in text and "-8.2" in text and '<tr class="fail">' in text
-    assert "Hot spots" in text and "<tr><td>1</td>" in text  # rank stays an integer
-    # hot spot at 50 MHz (bin 20 of 1 MHz bins from 30 MHz) at (20 mm, 10 mm) (constructed)
-    assert re.search(r"50\.0000</td><td[^>]*>[-\d.]+</td><td[^>]*>20\.0</td>"
-                     r"<td[^>]*>10\.0</td>", text)
+    # emission peak at 50 MHz (bin 20 of 1 MHz bins from 30 MHz), rank an integer (constructed)
+    assert "Emission peaks" in text and re.search(r"<tr><td>1</td><td[^>]*>50\.0000</td>", text)
+    # its hot spot on each map at (20 mm, 10 mm), numbered 1 on its own map (constructed)
+    for name in ("rotation 0 deg", "rotation 90 deg", "combined"):
+        assert re.search(rf"<tr><td>{name}</td><td>1</td><td[^>]*>20\.0</td><td[^>]*>10\.0</td>",
+                         text), name
     assert "reconnected after 2.0 s" in text
     assert "dBuV/m = reading dBuV + test-af" in text  # the chain used
     assert "No data: the run did not reach this step." in text  # step "later"
@@ -142,12 +145,12 @@ def test_report_tables_events_chain_and_missing_step(report):
 def test_corrected_ambient_and_limit_feed_the_plot(report, tmp_path):
     run, _, _ = report
     spec = runview.corrected_spectrum(run, EVIL)
-    # E = V + AF (reference sheet §3.2); AF linear in log10(f) between 30 MHz (10 dB/m) and
+    # E = V + AF (AF = E/V, common practice); AF linear in log10(f) between 30 MHz (10 dB/m) and
     # 1 GHz (30 dB/m) (transducers.py docstring)
     af_48 = 10.0 + 20.0 * np.log10(48 / 30) / np.log10(1000 / 30)
     assert spec.level[18] == pytest.approx(35.0 + af_48, abs=1e-4)
     limit = runview.step_limit(run, EVIL)
-    # CISPR 32 Table A.4 class B 3 m: 40 dBuV/m at 30-230 MHz (reference sheet §2.1)
+    # CISPR 32 Table A.4 clause A4.2, class B 3 m: 40 dBuV/m at 30-230 MHz
     assert limit.level("quasi-peak", 100e6) == pytest.approx(40.0)
     # a 40k-point trace plots (min/max envelope keeps it quick)
     freq = np.linspace(30e6, 1e9, 40001)

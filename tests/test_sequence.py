@@ -57,12 +57,12 @@ def test_quantities_become_si_floats():
     sequence = load_sequence(DEMO / "demo-quick.toml")
     sweep = sequence.sweeps["band-cd"]
     assert (sweep.start_hz, sweep.stop_hz, sweep.rbw_hz) == (30e6, 1e9, 120e3)
-    # step = B6/2 = 60 kHz for the 120 kHz CISPR C/D bandwidth (reference sheet §1.7 examples)
+    # step = B6/2 = 60 kHz for the 120 kHz CISPR C/D bandwidth (step <= B6/2: CISPR 16-2-x practice, from memory)
     assert sweep.freq_step_hz == 60e3
-    # VBW defaults to 3 x RBW: VBW >= 3 RBW for peak readings (reference sheet §8, from memory)
+    # VBW defaults to 3 x RBW: VBW >= 3 RBW for peak readings (from memory)
     assert sweep.vbw_hz == pytest.approx(360e3)
     hold = sequence.sweeps["band-cd-hold"]
-    assert hold.step_hz is None and hold.freq_step_hz == 60e3  # default rbw/2, §1.7
+    assert hold.step_hz is None and hold.freq_step_hz == 60e3  # default rbw/2 (common practice)
 
 
 def test_far_field_demo_covers_the_standard_search():
@@ -70,12 +70,12 @@ def test_far_field_demo_covers_the_standard_search():
     prescan = sequence.step("prescan")
     assert isinstance(prescan, PrescanStep)
     # receive-antenna height scan 1-4 m, both polarizations, EUT turned through 360 deg
-    # (reference sheet §3, CISPR 16-2-3)
+    # (CISPR 16-2-3 radiated method; ANSI C63.4)
     assert prescan.heights.values() == (1.0, 2.0, 3.0, 4.0)
     assert set(prescan.polarizations) == {"horizontal", "vertical"}
     assert prescan.azimuths.values() == tuple(45.0 * k for k in range(8))
     final = sequence.step("final")
-    assert final.dwell_s == 1.0  # QP dwell >= 1 s for unknown signals (reference sheet §1.8)
+    assert final.dwell_s == 1.0  # QP dwell >= 1 s for unknown signals (receiver manuals; common practice)
     assert final.height_search.offsets() == tuple(0.25 * k for k in range(-4, 5))
     assert sequence.sweep_of(final) is sequence.sweeps["band-cd"]
 

@@ -113,7 +113,8 @@ def rig(world, request):
 
 
 def test_checksum_matches_logged_lines():
-    # reference sheet §10 (derived): "N0 M110 N0*125" and "N7045 G1 X69.974 Y73.400 Z23.078 E873.6106*6"
+    # XOR of the bytes before '*' (derived) on lines logged from printer firmware (from memory):
+    # "N0 M110 N0*125" and "N7045 G1 X69.974 Y73.400 Z23.078 E873.6106*6"
     assert checksum("N0 M110 N0") == 125
     assert numbered_line(0, "M110 N0") == "N0 M110 N0*125"
     assert numbered_line(7045, "G1 X69.974 Y73.400 Z23.078 E873.6106").endswith("*6")
@@ -255,7 +256,7 @@ def test_xy_travel_happens_at_safe_z(rig, world):
     stage.move_to(0.100, 0.050, 0.003)
     mark = len(sim.received)
     stage.move_to(0.200, 0.100, 0.003, feed_m_per_s=0.01)
-    # F in units per minute (reference sheet §10): 10 mm/s = 600 mm/min
+    # F in units per minute (NIST RS274NGC v3, G94): 10 mm/s = 600 mm/min
     assert sim.received[mark:] == ["G1 Z40.000 F600", "G1 X200.000 Y100.000 F600", "G1 Z3.000 F600",
                                    "M400", "M114"]
     for seg in sim.trajectory:
@@ -356,7 +357,8 @@ def test_rotation_time_and_angle(rig, world):
 
 @pytest.mark.parametrize(("dialect", "text"), [("cartesian", "G4 P1500"), ("cnc", "G4 P1.5")])
 def test_dwell_unit_follows_the_dialect(rig, world, dialect, text):
-    # reference sheet §10: printer firmware G4 P in ms, CNC firmware G4 P in seconds
+    # G4 P in seconds (NIST RS274NGC v3, CNC firmware); printer firmware takes P in ms (from
+    # memory)
     _, clock = world
     sim, stage, recorder = rig(dialect)
     stage.connect()
@@ -384,7 +386,7 @@ def test_resend_request_repeats_the_line(rig, world):
     profile = _profile("cartesian", **{"handshake.line_numbers": True})
     sim, stage, recorder = rig(profile=profile, transport_cls=CorruptFirstNumberedLine)
     stage.connect()
-    assert sim.received[0] == "N0 M110 N0*125"  # reference sheet §10 (derived)
+    assert sim.received[0] == "N0 M110 N0*125"  # XOR checksum (derived)
     stage.home()
     stage.move_to(0.1, 0.05, 0.01)
     bad = [line for line in sim.received if " G7 " in line]
@@ -429,9 +431,9 @@ def test_sim_relative_mode_inches_and_set_position(rig, world):
     conv = LineConversation(recorder, stage.profile.handshake)
     conv.read_banner()
     conv.command("G28")  # home: (0, 0, 60) mm
-    conv.command("G92 X0 Y0 Z0")  # reference sheet §10: G92 sets the current position
+    conv.command("G92 X0 Y0 Z0")  # G92 sets the current position (NIST RS274NGC v3)
     conv.command("G1 Z-10 F600")
-    conv.command("G91")  # relative distances (reference sheet §10)
+    conv.command("G91")  # relative distances (NIST RS274NGC v3)
     conv.command("G1 X5 Y2")
     conv.command("G20")  # inches: 1 in = 25.4 mm exactly (international inch)
     conv.command("G1 X1")
@@ -464,7 +466,7 @@ def test_sim_status_report_follows_the_move_in_time(rig, world):
 def test_ok_with_extra_text_is_an_acknowledgement():
     profile = StageProfile.load("gcode-cartesian")
     conv = LineConversation(ScriptedTransport(lambda cmd: "ok T:21.2 /0.0"), profile.handshake)
-    # reference sheet §10: "ok may carry extra text, e.g. ok T:21.2 /0.0"
+    # printer firmware may append text to "ok", e.g. "ok T:21.2 /0.0" (from memory)
     assert conv.command("M105").ok_text == "T:21.2 /0.0"
 
 

@@ -24,7 +24,7 @@ def test_round_trip_and_dataframe(tmp_path):
     levels = np.linspace(0, 50, 101)
     tid = run.add_trace(meta(0), levels, completes_action=True)
     f, v = run.trace(tid)
-    # frequency axis f_i = start + i*(stop-start)/(N-1) (reference sheet §8, common practice)
+    # frequency axis f_i = start + i*(stop-start)/(N-1) (common practice)
     assert f[0] == 30e6 and f[-1] == 1e9 and f[1] == pytest.approx(30e6 + 970e6 / 100)
     np.testing.assert_allclose(v, levels.astype(np.float32))
     df = run.traces()

@@ -1,7 +1,9 @@
 """Transducer tables and chains: AF from gain, signs, log-f interpolation, coverage, CSV format.
 
-Expected values come from the reference sheet (/work/shared/reference.md) §3.2, §4 and §6.3,
-or are computed by hand next to the assertion.
+Expected values name their source beside them: the definition of the antenna factor along
+the receive chain, values derived from the effective aperture (AF from gain) and from Faraday's
+law (probes), derivations in docs/physics.md sections 4 and 6; or they are computed by hand next
+to the assertion.
 """
 
 from __future__ import annotations
@@ -30,29 +32,29 @@ TABLES = Path(bench.demo.__file__).parent / "tables"
 # --------------------------------------------------------------------------- AF from gain
 
 @pytest.mark.parametrize(("freq_hz", "gain_dbi", "af_db_per_m"), [
-    # Sheet §4 AF test vectors (derived from AF = 9.73/(lambda sqrt(G)), 50 ohm).
+    # AF test vectors (derived from AF = 9.73/(lambda sqrt(G)), 50 ohm; docs/physics.md 6).
     (30e6, 0.0, -0.23), (100e6, 0.0, 10.23), (100e6, 2.15, 8.08), (300e6, 6.0, 13.77),
     (1e9, 10.0, 20.23),
 ])
-def test_antenna_factor_from_gain_sheet_vectors(freq_hz, gain_dbi, af_db_per_m):
+def test_antenna_factor_from_gain_derived_vectors(freq_hz, gain_dbi, af_db_per_m):
     assert antenna_factor_from_gain_db(freq_hz, gain_dbi) == pytest.approx(af_db_per_m,
                                                                            abs=0.006)
 
 
 def test_antenna_factor_915mhz_8dbi_calculator_page():
-    # Sheet §4: a calculator page shows 21.50 dB/m at 915 MHz, 8 dBi. The exact constant
+    # An online antenna-factor calculator shows 21.50 dB/m at 915 MHz, 8 dBi. The exact constant
     # (29.774) gives 21.455 and the rounded 29.77 gives 21.458, so the page's figure is read as
     # 21.5 to 0.1 dB: we check agreement to 0.05 dB, not the 0.03 dB first asked for.
     af = antenna_factor_from_gain_db(915e6, 8.0)
     assert af == pytest.approx(21.50, abs=0.05)
-    # Same point by the linear form AF = 9.73/(lambda sqrt(G)) (sheet §4, Wikipedia copy).
+    # Same point by the linear form AF = 9.73/(lambda sqrt(G)) (Wikipedia "Antenna factor").
     lam = 299_792_458.0 / 915e6
     assert af == pytest.approx(20 * math.log10(9.73 / (lam * math.sqrt(10 ** 0.8))), abs=0.002)
 
 
 def test_antenna_factor_is_vectorised():
     out = antenna_factor_from_gain_db(np.array([30e6, 1e9]), np.array([0.0, 10.0]))
-    np.testing.assert_allclose(out, [-0.23, 20.23], atol=0.006)  # sheet §4 vectors
+    np.testing.assert_allclose(out, [-0.23, 20.23], atol=0.006)  # derived vectors
 
 
 # --------------------------------------------------------------------------- interpolation
@@ -100,7 +102,8 @@ def test_chain_sum_with_preamp_subtracting():
     pad = TransducerTable("pad", "attenuator", "db", freq, [6.0, 6.0])
     preamp = TransducerTable("lna", "preamp_gain", "db", freq, [30.0, 28.0])
     chain = TransducerChain([af, cable, pad, preamp])
-    # Sheet §3.2: E(dBuV/m) = V(dBuV) + AF + L_cable - G_preamp (+ attenuation, a loss).
+    # AF = E/V along the chain (common practice): E(dBuV/m) = V(dBuV) + AF + L_cable -
+    # G_preamp (+ attenuation, a loss).
     # By hand: 100 MHz 10.23 + 1 + 6 - 30 = -12.77; 1 GHz 20.23 + 3 + 6 - 28 = 1.23.
     np.testing.assert_allclose(chain.total_db(freq), [-12.77, 1.23], atol=1e-9)
     np.testing.assert_allclose(chain.correct(freq, [50.0, 40.0]), [37.23, 41.23], atol=1e-9)
@@ -124,7 +127,7 @@ def test_result_quantity_by_probe_kind():
     h = TransducerTable("loop", "probe_factor", "db_s_per_m", freq, [64.15, 24.42])
     e = TransducerTable("stub", "probe_factor", "db_per_m", freq, [116, 76])
     cable = TransducerTable("coax", "cable_loss", "db", freq, [0.1, 0.8])
-    # Sheet §3.2: H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)).
+    # Loop-antenna factor AF_H = H/V (common practice): H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)).
     assert TransducerChain([h, cable]).result_quantity == "dbua_per_m"
     assert TransducerChain([e]).result_quantity == "dbuv_per_m"
     assert TransducerChain([cable]).result_quantity == "dbuv"
@@ -230,7 +233,7 @@ def test_demo_tables_load_with_their_roles():
 
 def test_demo_antenna_factor_matches_its_stated_gain_curve():
     # The file header states the invented gain curve (MHz:dBi knots); at each knot the table
-    # must equal AF = 20 log10(f/MHz) - G - 29.77 (sheet §4).
+    # must equal AF = 20 log10(f/MHz) - G - 29.77 (derived, docs/physics.md section 6).
     path = TABLES / "bilog-af.csv"
     knots = re.findall(r"(\d+):(-?[\d.]+)", path.read_text().splitlines()[2].split("):")[1])
     assert len(knots) == 7
@@ -247,15 +250,15 @@ def loop_inductance_h(radius_m, wire_radius_m, turns):
 
 
 def loop_factor_db(freq_hz, radius_m, turns, inductance_h):
-    # Sheet §6.3: V_oc = 2 pi f mu0 N A H, loaded by 50 ohm through j w L.
+    # Faraday's law: V_oc = 2 pi f mu0 N A H, loaded by 50 ohm through j w L (derived).
     w = 2 * math.pi * freq_hz
     v_oc_per_h = w * 4e-7 * math.pi * turns * math.pi * radius_m**2
     return -20 * math.log10(v_oc_per_h * 50 / abs(50 + 1j * w * inductance_h))
 
 
-def test_demo_h_loop_10mm_matches_sheet_vector():
-    # Sheet §6.3: r = 5 mm, N = 1, H = 1 A/m gives V_oc = 0.620 mV at 1 MHz and 6.20 mV at
-    # 10 MHz, so AF_H = H/V = 20 log10(1/V) dB(S/m); the loop inductance changes these by
+def test_demo_h_loop_10mm_matches_derived_vector():
+    # Faraday's law (derived): r = 5 mm, N = 1, H = 1 A/m gives V_oc = 0.620 mV at 1 MHz and
+    # 6.20 mV at 10 MHz, so AF_H = H/V = 20 log10(1/V) dB(S/m); the loop inductance changes these by
     # < 0.003 dB. At 100 MHz the load adds 20 log10(|50 + j w L| / 50).
     table = load_table(TABLES / "hloop-10mm.csv")
     assert table.value_unit == "db_s_per_m"
@@ -279,7 +282,7 @@ def test_demo_h_loops_follow_faraday_with_their_stated_geometry(freq_hz):
 
 
 def test_demo_e_probe_rises_20db_per_decade_below_corner():
-    # Sheet §6.3: a capacitive probe into R is a high-pass, +20 dB/decade in response (so the
+    # Derived: a capacitive probe into R is a high-pass, +20 dB/decade in response (so the
     # factor falls 20 dB/decade) well below 1/(2 pi C R); open circuit V = E h_e, h_e = 3 mm,
     # C = 1 pF: at 1 MHz factor = -20 log10(h_e w C R).
     table = load_table(TABLES / "eprobe.csv")
@@ -293,7 +296,8 @@ def test_demo_receive_chain_covers_30mhz_to_6ghz():
                              ("bilog-af", "cable-5m", "preamp-30db")])
     freq = np.geomspace(30e6, 6e9, 1001)
     total = chain.total_db(freq)
-    # Sheet §3.2 sum at the table points, by the three tables' own values.
+    # The receive-chain sum (AF = E/V along the chain) at the table points, by the three
+    # tables' own values.
     af, coax, lna = chain.tables
     np.testing.assert_allclose(total, af.at(freq) + coax.at(freq) - lna.at(freq))
     assert np.all(np.isfinite(total))

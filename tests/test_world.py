@@ -1,7 +1,8 @@
 """bench.sim.world: the simulated physics (the board file itself: tests/test_board.py).
 
-"sheet" = /work/shared/reference.md. Small boards are written inline so each test controls its
-geometry; the demo board is checked for the scenario it promises.
+Expected values name their source beside them (textbook equations, standards, or "derived":
+docs/physics.md). Small boards are written inline so each test controls its geometry; the demo
+board is checked for the scenario it promises.
 """
 
 from __future__ import annotations
@@ -108,7 +109,7 @@ def test_loop_orientation_follows_field_direction():
 
 def test_near_field_falls_with_height_like_biot_savart():
     # Flat probe loop (axis z) on the axis of a 1 cm^2 current loop lying in the board: the
-    # level follows the on-axis Biot-Savart field I a^2 / (2 (a^2 + z^2)^1.5) (sheet §6.3);
+    # level follows the on-axis Biot-Savart field I a^2 / (2 (a^2 + z^2)^1.5) (Biot-Savart);
     # the world spreads the emitter and the probe over 7-point discs, good to 0.4 dB.
     from bench.physics import loop_axis_h_a_per_m
     world = World(make_board(spur(axis="[0, 0, 1]", freq="1 MHz", depth="1 mm")))
@@ -117,13 +118,13 @@ def test_near_field_falls_with_height_like_biot_savart():
     assert np.all(np.diff(levels) < 0)
     loop = 20 * np.log10(loop_axis_h_a_per_m(1.0, np.sqrt(1e-4 / np.pi), heights + 1e-3))
     np.testing.assert_allclose(levels - levels[-1], loop - loop[-1], atol=0.4)
-    # far from both loops the quasi-static dipole field falls as 1/r^3: 60 dB/decade (sheet §3.1)
+    # far from both loops the quasi-static dipole field falls as 1/r^3: 60 dB/decade (Balanis 5-18)
     assert levels[4] - levels[5] == pytest.approx(60 * np.log10(0.081 / 0.041), abs=0.01)
 
 
 def test_near_field_absolute_level_flat_loop_over_dipole():
     # 1 mA in 1 cm^2 at 1 MHz, probe r = 2 mm flat loop 40 mm above: H = m/(2 pi r^3), then
-    # V = w mu0 A H (sheet §6.3), P = V^2/(2*50) -- computed here from the sheet's formulas.
+    # V = w mu0 A H (Faraday's law), P = V^2/(2*50) -- computed here from those formulas (derived).
     world = World(make_board(spur(axis="[0, 0, 1]", freq="1 MHz", depth="1 mm")))
     r = 0.041
     h = 1e-3 * 1e-4 / (2 * np.pi * r**3)
@@ -162,8 +163,9 @@ def test_unknown_tool_reads_nothing():
 
 def test_far_field_absolute_level_free_space():
     # Vertical Hertzian dipole, 30 m, no ground, antenna at table height (theta = 90 deg):
-    # |E| = 6.283e-7 f I l / r (sheet §6.1), V = E/AF with AF(dB/m) = 20 log f(MHz) - G - 29.77
-    # (sheet §4), then -2 dB cable, +20 dB preamp, dBm = dBuV - 106.99 (sheet §4).
+    # |E| = 6.283e-7 f I l / r (Balanis eq. 4-10), V = E/AF with AF(dB/m) = 20 log f(MHz) - G -
+    # 29.77 (derived, docs/physics.md 6), then -2 dB cable, +20 dB preamp, dBm = dBuV - 106.99
+    # (50 ohm, derived).
     board = make_board(spur(dipole="electric", axis="[0, 0, 1]", size='length = "10 cm"',
                             freq="300 MHz", current="10 mA", depth="0 mm"),
                        distance="30 m", ground="false", gain="2 dBi")
@@ -180,14 +182,14 @@ def test_far_field_depends_on_mast_height_and_polarization():
                                   freq="300 MHz")))
     heights = np.linspace(1.0, 4.0, 13)
     vert = [level(world, SimState(tool=0, mast_height_m=h, polarization="vertical")) for h in heights]
-    assert max(vert) - min(vert) > 3.0  # ground-reflection lobes (sheet §6.4)
+    assert max(vert) - min(vert) > 3.0  # ground-reflection lobes (two-ray model, Smith 1982)
     horiz = level(world, SimState(tool=0, mast_height_m=1.0, polarization="horizontal"))
     assert horiz < vert[0] - 60.0  # a vertical dipole has no horizontal component in this plane
 
 
 def test_far_field_height_scan_follows_two_ray_model():
     # Horizontal y-directed dipole at the table height 0.8 m, 10 m, 1 GHz: level vs mast height
-    # must follow |e^{-jkR1}/R1 - e^{-jkR2}/R2| (sheet §6.4) evaluated here independently.
+    # must follow |e^{-jkR1}/R1 - e^{-jkR2}/R2| (Smith 1982) evaluated here independently.
     world = World(make_board(spur(dipole="electric", axis="[0, 1, 0]", size='length = "1 cm"',
                                   freq="1 GHz", depth="0 mm", x="50 mm", y="40 mm"), distance="10 m"))
     heights = np.linspace(1.0, 4.0, 31)
@@ -223,7 +225,7 @@ def test_ambient_stays_when_board_is_off():
     assert {ln.source for ln in on} == {"s", "fm"}
     assert [ln.source for ln in off] == ["fm"]
     assert off[0].ambient
-    # dBuV/m - AF - cable + preamp - 106.99 (sheet §3.2, §4), AF from the gain formula
+    # dBuV/m - AF - cable + preamp - 106.99 (AF = E/V; 50 ohm, derived), AF from the gain formula
     expected = 52 - (20 * np.log10(97.3) - 1 - 29.77) - 2 + 20 - 106.99
     assert off[0].level_dbm == pytest.approx(expected, abs=0.02)
     rotated = world.lines(SimState(tool=0, board_powered=False, azimuth_deg=123, mast_height_m=3.1), 30e6, 1e9)
@@ -254,7 +256,7 @@ def test_determinism_with_seed():
 
 def test_demo_scan_has_failures_margins_passes_and_ambient():
     # CISPR 32 class B at 3 m: 40 dBuV/m 30-230 MHz, 47 dBuV/m 230-1000 MHz (CISPR 32 Table A.4,
-    # clause A4.2; sheet §2.1). Maximise over height, polarization and turntable like a test house.
+    # clause A4.2). Maximise over height, polarization and turntable like a test house.
     world = World(demo_board(), seed=0)
     site = world.board.site
     best: dict = {}
@@ -264,7 +266,7 @@ def test_demo_scan_has_failures_margins_passes_and_ambient():
                 for ln in world.lines(SimState(tool=0, mast_height_m=h, polarization=pol, azimuth_deg=az),
                                       30e6, 1e9):
                     gain = float(site.antenna_gain_dbi(np.array([ln.freq_hz]))[0])
-                    af = 20 * np.log10(ln.freq_hz / 1e6) - gain - 29.77  # sheet §4
+                    af = 20 * np.log10(ln.freq_hz / 1e6) - gain - 29.77  # derived, physics.md 6
                     field = ln.level_dbm + 106.99 + af + site.cable_loss_db - site.preamp_gain_db
                     key = (ln.source, round(ln.freq_hz, -3), ln.ambient)
                     best[key] = max(best.get(key, -999.0), field)

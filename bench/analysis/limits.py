@@ -26,10 +26,11 @@ A level is one string (flat segment) or two strings ``["66 dBuV", "56 dBuV"]`` f
 changes linearly with log10(frequency) between its ends (CISPR 32 conducted class B, 0.15-0.5
 MHz). Field levels may also be written linearly (``"100 uV/m"``) as FCC rules state them.
 
-Rules implemented (reference sheet §2.4):
+Rules implemented (docs/physics.md, section 7):
 
-* At a frequency shared by two segments the **lower** value applies (CISPR table notes;
-  FCC §15.109(c) "the tighter limit applies at the band edges").
+* At a frequency shared by two segments the **lower** value applies (CISPR 32 table notes, "the
+  lower limit shall apply at the transition frequency", from memory; FCC 47 CFR 15.109(c)
+  "the tighter limit applies at the band edges").
 * Outside every segment of a line the level is NaN.
 * Exactly 1 GHz belongs to the quasi-peak table in the built-in files; the lines above 1 GHz
   start just above it (``start_exclusive = true``, FCC §15.35(b) "above 1000 MHz").
@@ -73,10 +74,12 @@ __all__ = [
 DETECTORS = ("quasi-peak", "peak", "average")
 _FIELD_QUANTITIES = ("dbuv_per_m", "dbua_per_m")
 # Linear spellings accepted for a level, per quantity: unit -> factor to the dB reference unit.
+# Exact spellings: SI prefixes and unit symbols are case-sensitive (SI Brochure, BIPM, 9th
+# edition 2019, section 3), "u" standing for the micro sign (common practice).
 _LINEAR_UNITS = {
-    "dbuv_per_m": {"uv/m": 1.0, "µv/m": 1.0, "mv/m": 1e3, "v/m": 1e6},
-    "dbuv": {"uv": 1.0, "µv": 1.0, "mv": 1e3, "v": 1e6},
-    "dbua_per_m": {"ua/m": 1.0, "µa/m": 1.0, "ma/m": 1e3, "a/m": 1e6},
+    "dbuv_per_m": {"uV/m": 1.0, "µV/m": 1.0, "mV/m": 1e3, "V/m": 1e6},
+    "dbuv": {"uV": 1.0, "µV": 1.0, "mV": 1e3, "V": 1e6},
+    "dbua_per_m": {"uA/m": 1.0, "µA/m": 1.0, "mA/m": 1e3, "A/m": 1e6},
 }
 _LINEAR = re.compile(r"^\s*([-+]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][-+]?\d+)?)\s*(\S+)\s*$")
 _NAME = r"^[a-z0-9][a-z0-9._-]*$"
@@ -95,7 +98,8 @@ class LimitSegment:
         Frequency range in Hz, ``start_hz < stop_hz``.
     start_level, stop_level : float
         Level at each end, in the unit of the limit set. Equal for a flat segment; otherwise
-        the level changes linearly with log10(frequency) (reference sheet §2.5).
+        the level changes linearly with log10(frequency) (CISPR 32 conducted limits, "decreasing
+        linearly with the logarithm of the frequency").
     """
 
     start_hz: float
@@ -107,7 +111,7 @@ class LimitSegment:
         """Level at frequencies inside the segment (no range check), linear in log10(f)."""
         if self.start_level == self.stop_level:
             return np.full(np.shape(freq_hz), self.start_level)
-        # L(f) = L1 - (L1 - L2) * log10(f/f1) / log10(f2/f1)   (reference sheet §2.5)
+        # L(f) = L1 - (L1 - L2) * log10(f/f1) / log10(f2/f1): linear in log f (CISPR 32, 0.15-0.5 MHz)
         fraction = np.log10(freq_hz / self.start_hz) / math.log10(self.stop_hz / self.start_hz)
         return self.start_level + (self.stop_level - self.start_level) * fraction
 
@@ -160,7 +164,7 @@ class LimitLine:
                 else freq >= seg.start_hz
             inside = above_start & (freq <= seg.stop_hz)
             # fmin ignores NaN: where two segments share a frequency the lower one wins
-            # (CISPR table notes, FCC §15.109(c); reference sheet §2.4).
+            # (CISPR 32 table notes, from memory; FCC 47 CFR 15.109(c)).
             out[inside] = np.fmin(out[inside], seg.level_at(freq[inside]))
         return out.reshape(np.shape(freq_hz))
 
@@ -244,7 +248,8 @@ class LimitSet:
         """Lowest limit of any detector at each frequency (NaN where no line applies).
 
         A peak-detector trace below this level meets every line, since peak >= quasi-peak >=
-        average for any signal (reference sheet §1.6).
+        average for any signal measured with the same bandwidth (CISPR 16-1-1 detector
+        definitions; common practice in pre-scans).
         """
         levels = [line.level(freq_hz) for line in self.lines]
         return np.fmin.reduce(np.stack(levels), axis=0)
@@ -257,8 +262,8 @@ class LimitSet:
         distance_m : float
             New distance in m.
         db_per_decade : float
-            Fall-off rate; 20 dB/decade (1/r) is the far-field rule, reference sheet §3.1.
-            (FCC §15.31(f)(2) uses 40 dB/decade below 30 MHz.)
+            Fall-off rate; 20 dB/decade (1/r) is the far-field rule (FCC 47 CFR 15.31(f)(1)).
+            (FCC 15.31(f)(2) uses 40 dB/decade below 30 MHz.)
 
         Returns
         -------
@@ -288,7 +293,7 @@ def distance_correction_db(from_m: float, to_m: float, db_per_decade: float = 20
     """dB to add to a level at ``from_m`` to get the level at ``to_m``.
 
     ``db_per_decade * log10(from_m / to_m)``; 20 dB/decade is the far-field (1/r) rule, so
-    10 m -> 3 m gives +10.46 dB (reference sheet §3.1).
+    10 m -> 3 m gives +10.46 dB (FCC 47 CFR 15.31(f)(1): inverse linear distance).
     """
     if not (from_m > 0 and to_m > 0):
         raise AnalysisError(f"distances must be > 0 m, found {from_m!r} m and {to_m!r} m")
@@ -314,7 +319,7 @@ def near_field_warnings(distance_m: float, freq_hz, product_size_m: float | None
     Returns
     -------
     list of str
-        Empty when the far-field assumptions hold. Checks (reference sheet §5.1):
+        Empty when the far-field assumptions hold. Checks (Ott; Balanis ch. 2, field regions):
         r < lambda/(2 pi) at the lowest frequency (a small source's near field, kr < 1) and
         r < 2 D^2 / lambda at the highest frequency (Fraunhofer distance of a product of size D).
     """
@@ -347,7 +352,7 @@ def near_field_warnings(distance_m: float, freq_hz, product_size_m: float | None
 # ----------------------------------------------------------------------------- file format
 
 
-_Frequency = quantity("frequency", positive=True)
+_Frequency = quantity("frequency", positive=True, radio=True)
 
 
 class _SegmentModel(BaseModel):
@@ -383,10 +388,18 @@ def _parse_level(text: Any, quantity_name: str) -> float:
         return units.parse(text, quantity_name)
     except UnitError:
         match = _LINEAR.match(text) if isinstance(text, str) else None
-        factor = match and _LINEAR_UNITS[quantity_name].get(match.group(2).lower())
-        if not factor or float(match.group(1)) <= 0:
+        if not match:
             raise
-        return 20.0 * math.log10(float(match.group(1)) * factor)
+        number, unit = match.group(1), match.group(2)
+        factor = _LINEAR_UNITS[quantity_name].get(unit)
+        meant = units.case_suggestion(unit, _LINEAR_UNITS[quantity_name])
+        if factor is None and meant is not None:
+            raise UnitError(f"expected a level like {units.DIMENSIONS[quantity_name]}, found "
+                            f"{text.strip()}; did you mean {number} {meant}? (unit symbols and "
+                            "SI prefixes are case-sensitive)") from None
+        if not factor or float(number) <= 0:
+            raise
+        return 20.0 * math.log10(float(number) * factor)
 
 
 #: Plausible limit levels, dB above the quantity's reference: every radiated and conducted

@@ -1,9 +1,15 @@
-"""Near-field maps of a grid step and the hot spots found in them.
+"""Near-field maps of a grid step, the hot spots of each map, and the step's emission peaks.
 
 A grid step stores one trace per (position, probe rotation, segment). A map reduces each trace
 to one number (the level at a frequency, or the maximum over a band) and places it on the
 regular grid spanned by the stored board coordinates of the probe tip. Levels are corrected
 with the step's probe factor chain (:mod:`bench.analysis.runview`).
+
+Hot spots belong to one map: the 2-D local maxima of that map that stand out by their
+topographic prominence, so a weaker second source is listed beside a stronger one (rule and
+thresholds in docs/physics.md, section 4). A hot spot on the border of the measured area is
+flagged: its maximum may lie outside. :func:`emission_peaks` is the frequency view: peaks of
+the maximum-over-grid spectrum, the frequencies worth a map.
 """
 
 from __future__ import annotations
@@ -20,10 +26,23 @@ from bench.analysis.runview import _raw_unit_offset_db, _step_unit, step_chain, 
 from bench.errors import AnalysisError
 from bench.units import format_hz
 
-__all__ = ["GridMaps", "HOT_SPOT_COLUMNS", "MapChange", "compare_maps", "grid_maps", "hot_spots", "power_sum_db"]
+__all__ = ["EDGE_NOTE", "EMISSION_COLUMNS", "GridMaps", "HOT_SPOT_ABOVE_MEDIAN_DB",
+           "HOT_SPOT_COLUMNS", "HOT_SPOT_PROMINENCE_DB", "MapChange", "compare_maps",
+           "emission_peaks", "grid_maps", "hot_spots", "peak_prominences", "power_sum_db"]
 
-#: Columns of the table returned by :func:`hot_spots`.
-HOT_SPOT_COLUMNS = ("freq_hz", "level", "x_m", "y_m", "rotation_deg", "prominence_db")
+#: Columns of the table returned by :func:`emission_peaks`.
+EMISSION_COLUMNS = ("freq_hz", "level", "x_m", "y_m", "rotation_deg", "prominence_db")
+#: Columns of the table returned by :func:`hot_spots` and :meth:`GridMaps.hot_spots`.
+HOT_SPOT_COLUMNS = ("map", "rank", "x_m", "y_m", "level", "prominence_db", "at_edge")
+#: A hot spot rises at least this much above the col that joins it to a higher one, dB (our
+#: choice, as for spectral peaks: a 6 dB dip separates two sources clearly).
+HOT_SPOT_PROMINENCE_DB = 6.0
+#: ... and at least this much above the map's median level, dB: a noise bump of a single
+#: Rayleigh-distributed reading exceeds its median by 12 dB with probability
+#: 2**-(10**1.2) = 1.7e-5 per position (derived in docs/physics.md, section 4).
+HOT_SPOT_ABOVE_MEDIAN_DB = 12.0
+#: What a hot spot on the border of the measured area is flagged with.
+EDGE_NOTE = "may continue outside the scanned area"
 # Positions closer than this are the same grid node (stage resolution is far coarser).
 _POSITION_RESOLUTION_M = 1e-6
 
@@ -73,6 +92,161 @@ class GridMaps:
             raise AnalysisError("the combined map has no measured point")
         iy, ix = np.unravel_index(int(np.nanargmax(self.combined)), self.combined.shape)
         return float(self.x_m[ix]), float(self.y_m[iy]), float(self.combined[iy, ix])
+
+    def panels(self) -> list[tuple[str, float | None, np.ndarray]]:
+        """The maps a report draws: ``(name, rotation in deg or None, 2-D map)``.
+
+        One per probe rotation (``"rotation 90 deg"``), then ``"combined"`` when there is
+        more than one rotation (with one, the combined map is that rotation's map).
+        """
+        out = [(f"rotation {rot:g} deg", rot, self.by_orientation[rot])
+               for rot in sorted(self.by_orientation)]
+        if len(out) > 1:
+            out.append(("combined", None, self.combined))
+        return out
+
+    def hot_spots(self, map_name: str | None = None, **kwargs) -> pd.DataFrame:
+        """Hot spots of each map on its own (:func:`hot_spots`), panel after panel.
+
+        Parameters
+        ----------
+        map_name : str, optional
+            Only this panel of :meth:`panels` (e.g. ``"combined"``); default every panel.
+        **kwargs
+            ``prominence_db``, ``above_median_db``, ``top`` of :func:`hot_spots`.
+        """
+        parts = [hot_spots(self.x_m, self.y_m, z, map_name=name, **kwargs)
+                 for name, _, z in self.panels() if map_name in (None, name)]
+        parts = [p for p in parts if len(p)]
+        if not parts:
+            return pd.DataFrame(columns=list(HOT_SPOT_COLUMNS))
+        return pd.concat(parts, ignore_index=True)
+
+
+# --------------------------------------------------------------------------- hot spots of a map
+
+_NEIGHBOURS = ((-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1))
+
+
+def _neighbours(cell: int, ny: int, nx: int) -> list[int | None]:
+    """Flat indices of the 8 neighbours of ``cell``; None where one lies outside the grid."""
+    cy, cx = divmod(cell, nx)
+    return [(cy + dy) * nx + cx + dx if 0 <= cy + dy < ny and 0 <= cx + dx < nx else None
+            for dy, dx in _NEIGHBOURS]
+
+
+def _root(parent: list[int], cell: int) -> int:
+    """Union-find root of ``cell``, compressing the path on the way."""
+    root = cell
+    while parent[root] != root:
+        root = parent[root]
+    while parent[cell] != root:
+        parent[cell], cell = root, parent[cell]
+    return root
+
+
+def peak_prominences(level) -> dict[int, float]:
+    """Every regional maximum of a 2-D map with its topographic prominence, dB.
+
+    Positions are visited from the highest level down; a position joins the measured
+    neighbours (8-connected) already visited. When it joins two or more groups it is the col
+    between them: every group but the one with the highest peak ends there, and its peak's
+    prominence is the peak level minus the col level. The highest peak of each connected
+    measured region gets its height above the lowest level of that region. Unmeasured
+    positions (NaN) are never crossed. Equal levels are visited in row-major order, so a flat
+    top counts once.
+
+    Parameters
+    ----------
+    level : array_like, shape (ny, nx)
+        The map in dB (any dB reference), NaN where not measured.
+
+    Returns
+    -------
+    dict of int to float
+        Flat (row-major) index of each peak -> prominence in dB.
+    """
+    z = np.asarray(level, float)
+    ny, nx = z.shape
+    flat = z.ravel()
+    valid = np.flatnonzero(np.isfinite(flat))
+    parent = [-1] * flat.size
+    peak: dict[int, int] = {}       # group root -> its highest position (the first visited)
+    born: dict[int, int] = {}       # group root -> rank of its peak in the visiting order
+    lowest: dict[int, float] = {}   # group root -> the lowest level it has reached
+    out: dict[int, float] = {}
+    for cell in valid[np.argsort(-flat[valid], kind="stable")].tolist():
+        roots = {_root(parent, n) for n in _neighbours(cell, ny, nx)
+                 if n is not None and parent[n] >= 0}
+        group = cell
+        if roots:
+            # the group whose peak was visited first has the highest peak (ties: row-major)
+            group = min(roots, key=lambda r: born[r])
+            for other in roots - {group}:
+                out[peak[other]] = float(flat[peak[other]] - flat[cell])  # this cell is the col
+                parent[other] = group
+        else:
+            peak[cell], born[cell] = cell, len(born)
+        parent[cell] = group
+        lowest[group] = float(flat[cell])  # visited from the top down: the newest is the lowest
+    for root, top in peak.items():
+        if parent[root] == root:
+            out[top] = float(flat[top] - lowest[root])
+    return out
+
+
+def _at_edge(z: np.ndarray, cell: int) -> bool:
+    """True when a neighbour of ``cell`` lies outside the grid or was not measured."""
+    ny, nx = z.shape
+    return any(n is None or not np.isfinite(z.flat[n]) for n in _neighbours(cell, ny, nx))
+
+
+def hot_spots(x_m, y_m, level, *, map_name: str = "combined",
+              prominence_db: float = HOT_SPOT_PROMINENCE_DB,
+              above_median_db: float = HOT_SPOT_ABOVE_MEDIAN_DB, top: int = 10) -> pd.DataFrame:
+    """The hot spots of one map: distinct sources told apart by their prominence.
+
+    A hot spot is a regional maximum of the map (:func:`peak_prominences`) whose prominence is
+    at least ``prominence_db`` and whose level is at least ``above_median_db`` above the
+    map's median level. A weaker source beside a stronger one is listed as long as the dip
+    between them is deep enough. A hot spot next to the border of the measured area (a
+    neighbour outside the grid or not measured) is flagged ``at_edge``: its true maximum may
+    lie outside the scanned area.
+
+    Parameters
+    ----------
+    x_m, y_m : array_like
+        Grid axes in board coordinates, m.
+    level : array_like, shape (len(y_m), len(x_m))
+        The map in dB (row = y), NaN where not measured.
+    map_name : str
+        Name of the map, copied to the ``map`` column.
+    prominence_db, above_median_db : float
+        Thresholds in dB (defaults :data:`HOT_SPOT_PROMINENCE_DB`,
+        :data:`HOT_SPOT_ABOVE_MEDIAN_DB`).
+    top : int
+        Number of hot spots kept, the strongest.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns :data:`HOT_SPOT_COLUMNS`: map name, rank (1 = strongest), position in m,
+        level in the map's unit, prominence in dB, ``at_edge`` flag; highest level first.
+    """
+    z = np.asarray(level, float)
+    rows = []
+    if np.any(np.isfinite(z)):
+        floor = float(np.nanmedian(z))
+        for cell, prominence in peak_prominences(z).items():
+            iy, ix = divmod(cell, z.shape[1])
+            if prominence >= prominence_db and z[iy, ix] >= floor + above_median_db:
+                rows.append((float(x_m[ix]), float(y_m[iy]), float(z[iy, ix]), prominence,
+                             _at_edge(z, cell)))
+    rows.sort(key=lambda r: (-r[2], r[1], r[0]))
+    table = pd.DataFrame([(map_name, rank, *row) for rank, row in enumerate(rows[:top], 1)],
+                         columns=list(HOT_SPOT_COLUMNS))
+    return table.astype({"rank": int, "x_m": float, "y_m": float, "level": float,
+                         "prominence_db": float, "at_edge": bool})
 
 
 class _GridTraces:
@@ -217,13 +391,14 @@ def _max_over_grid(traces: _GridTraces):
             np.concatenate([p[2] for p in parts]))
 
 
-def hot_spots(run, label: str, *, top: int = 10, prominence_db: float = 6.0,
-              min_separation_hz: float | None = None) -> pd.DataFrame:
-    """The strongest emissions of a grid step and where on the board they are strongest.
+def emission_peaks(run, label: str, *, top: int = 10, prominence_db: float = 6.0,
+                   min_separation_hz: float | None = None) -> pd.DataFrame:
+    """The strongest emissions of a grid step: the frequencies worth a map.
 
     Peaks are searched (:func:`bench.analysis.peaks.find_peaks_hz`) in the maximum-over-grid
-    corrected spectrum; for each peak the table gives the position and probe rotation whose
-    trace holds that maximum.
+    corrected spectrum; for each peak the table gives the position and probe rotation of the
+    single strongest reading. Where the sources of a frequency are, one or several, is the
+    business of the map at that frequency and its :func:`hot_spots`.
 
     Parameters
     ----------
@@ -242,8 +417,8 @@ def hot_spots(run, label: str, *, top: int = 10, prominence_db: float = 6.0,
     Returns
     -------
     pandas.DataFrame
-        Columns :data:`HOT_SPOT_COLUMNS` (level in the step's unit, positions in m, rotation
-        in degrees), sorted by level, highest first.
+        Columns :data:`EMISSION_COLUMNS` (frequency in Hz, level in the step's unit,
+        positions in m, rotation in degrees, prominence in dB), sorted by level, highest first.
     """
     traces = _GridTraces(run, label)
     if min_separation_hz is None:
@@ -265,7 +440,7 @@ def hot_spots(run, label: str, *, top: int = 10, prominence_db: float = 6.0,
         "y_m": rows["y_m"].to_numpy(dtype=float),
         "rotation_deg": [_rotation(r) for r in rows["rotation_deg"]],
         "prominence_db": peaks["prominence_db"].to_numpy(),
-    }, columns=list(HOT_SPOT_COLUMNS))
+    }, columns=list(EMISSION_COLUMNS))
     table = table.sort_values("level", ascending=False, kind="stable")
     return table.head(top).reset_index(drop=True)
 

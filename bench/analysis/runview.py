@@ -125,7 +125,7 @@ def _raw_unit_offset_db(run, label: str) -> float:
     if stored == {"dbuv"}:
         return 0.0
     if stored == {"dbm"}:
-        return float(units.dbm_to_dbuv(0.0))  # dBuV = dBm + 106.99 at 50 ohm (reference sheet §4)
+        return float(units.dbm_to_dbuv(0.0))  # dBuV = dBm + 106.99 at 50 ohm (derived, docs/physics.md 1)
     raise AnalysisError(f"step {label!r}: expected traces stored in dbuv, found {sorted(stored)}")
 
 
@@ -204,7 +204,7 @@ def step_limit(run, label: str, *, warnings: list[str] | None = None) -> LimitSe
     Returns
     -------
     LimitSet or None
-        Converted at 20 dB/decade (far-field rule, reference sheet §3.1) when the limit's
+        Converted at 20 dB/decade (far-field rule, FCC 47 CFR 15.31(f)(1)) when the limit's
         distance differs from the step's ``distance_m``.
 
     Raises

@@ -13,7 +13,8 @@ role               sign  value unit (column suffix)  what it does
 ``preamp_gain``     -    dB (``_db``)                gain before the receiver
 =================  ====  =========================  ==================================
 
-so that E(dBuV/m) = V(dBuV) + AF(dB/m) + L_cable(dB) - G_preamp(dB) (reference sheet §3.2) and
+so that E(dBuV/m) = V(dBuV) + AF(dB/m) + L_cable(dB) - G_preamp(dB) (the definition of the
+antenna factor AF = E/V followed along the chain; docs/physics.md, section 6) and
 H(dBuA/m) = V(dBuV) + AF_H(dB(S/m)). Loss and gain tables must be >= 0 dB: a negative loss is
 almost always a sign mistake, so it is refused rather than silently added.
 
@@ -81,7 +82,7 @@ def antenna_factor_from_gain_db(freq_hz, gain_dbi, impedance_ohm: float = 50.0):
     """Antenna factor from realised gain (far field, matched, co-polarised).
 
     AF = sqrt(4 pi eta0 / Z) / (lambda sqrt(G)), i.e. 9.73/(lambda sqrt(G)) for 50 ohm, or
-    AF(dB/m) = 20 log10(f/MHz) - G(dBi) - 29.77 (reference sheet §4). Computed by
+    AF(dB/m) = 20 log10(f/MHz) - G(dBi) - 29.77 (derived in docs/physics.md, section 6). Computed by
     :func:`bench.physics.antenna_factor_db_from_gain`; named here for table work.
 
     Parameters
@@ -379,7 +380,7 @@ def table_from_mapping(mapping: Mapping, *, base_dir: str | Path | None = None,
 def _inline_freq(data: dict, file: str | None, key: str | None) -> list[float]:
     if "freq" in data:
         try:
-            return [units.parse(v, "frequency") for v in data.pop("freq")]
+            return [units.parse(v, "frequency", radio=True) for v in data.pop("freq")]
         except UnitError as exc:
             raise ConfigError(exc.message, file=file, key=f"{key}.freq" if key else "freq") \
                 from None
@@ -434,7 +435,7 @@ class TransducerChain:
         self.check_covers(freq)
         total = np.zeros(freq.shape)
         for table in self.tables:
-            # E = V + AF + L_cable - G_preamp (reference sheet §3.2): the role carries the sign.
+            # E = V + AF + L_cable - G_preamp (AF = E/V along the chain): the role carries the sign.
             total = total + table.sign * table.at(freq)
         return total
 

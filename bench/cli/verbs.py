@@ -142,7 +142,7 @@ def cmd_report(args) -> int:
 
     def freq(text: str, option: str) -> float:
         try:
-            return units.parse(text, "frequency")
+            return units.parse(text, "frequency", radio=True)
         except ConfigError as exc:
             raise ConfigError(exc.message, key=option) from None
 
@@ -157,7 +157,10 @@ def cmd_report(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    print(app.compare(args.before, args.after, out=args.out))
+    result = app.compare(args.before, args.after, out=args.out)
+    for line in result.lines():  # the summary at the top of the page, the same text
+        print(line)
+    print(result.path)
     return 0
 
 

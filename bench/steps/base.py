@@ -225,6 +225,13 @@ class StepKind:
         if spectrum is not None:
             writer.chain_block(spectrum)
 
-    def compare_parts(self, run_b, run_a, label: str, out: Path, outline) -> list[str]:
-        """Extra HTML of a before/after comparison beyond the spectra and matched results."""
-        return []
+    def compare_parts(self, run_b, run_a, label: str, out: Path, outline) -> Any:
+        """What the kind adds to a before/after comparison beyond the spectra and matched results.
+
+        Returns a :class:`bench.analysis.changes.KindComparison`: the kind's change figures,
+        which join the step's summary line, and its HTML, rendered from those same figures so
+        the page cannot contradict its summary. Default: nothing.
+        """
+        from bench.analysis.changes import KindComparison
+
+        return KindComparison()

@@ -39,8 +39,10 @@ Detector = Literal["peak", "negative", "sample", "average", "rms", "quasi-peak",
 Polarization = Literal["horizontal", "vertical"]
 Label = Annotated[StrictStr, Field(pattern=r"^[a-z0-9_-]{1,64}$")]
 
-Frequency = quantity("frequency", non_negative=True)
-PositiveFrequency = quantity("frequency", positive=True)
+# Every frequency of a sequence is a radio frequency (sweep limits, RBW, VBW, step, span,
+# separations): "30 mHz" there is a megahertz with the wrong case, refused with a hint.
+Frequency = quantity("frequency", non_negative=True, radio=True)
+PositiveFrequency = quantity("frequency", positive=True, radio=True)
 Length = quantity("length")
 NonNegativeLength = quantity("length", non_negative=True)
 PositiveLength = quantity("length", positive=True)

@@ -15,7 +15,9 @@ Sequence file::
 
 Planning checks every position against the stage's soft limits before anything moves; the
 readings go through the probe's factor (dBuA/m for an H loop, dBuV/m for an E probe); the
-report draws maps per orientation and combined, and a hot-spot table.
+report lists the emission peaks of the scan and draws maps per orientation and combined, each
+map with its own hot spots (distinct sources by 2-D prominence, those on the edge of the
+scanned area flagged) and their table.
 """
 
 from __future__ import annotations
@@ -45,9 +47,10 @@ from bench.tomlsource import cross_check_error
 __all__ = ["Rect", "GridStep", "GridKind", "grid_positions", "inside_polygon"]
 
 _EPS = 1e-9
-_HOT_SPOT_COLUMNS = (("freq_hz", "frequency (MHz)"), ("level", "level"), ("x_m", "x (mm)"),
-                     ("y_m", "y (mm)"), ("rotation_deg", "probe rotation (deg)"),
+_EMISSION_COLUMNS = (("rank", "#"), ("freq_hz", "frequency (MHz)"), ("level", "level"),
                      ("prominence_db", "prominence (dB)"))
+_HOT_SPOT_COLUMNS = (("map", "map"), ("rank", "#"), ("x_m", "x (mm)"), ("y_m", "y (mm)"),
+                     ("level", "level"), ("prominence_db", "prominence (dB)"), ("note", "note"))
 
 
 class Rect(StrictModel):
@@ -251,18 +254,19 @@ class GridKind(StepKind):
         from bench.analysis import maps as maps_mod
 
         spectrum = writer.spectrum()
-        spots = writer.attempt("hot spots", lambda: maps_mod.hot_spots(writer.run, writer.label))
+        peaks = writer.attempt("emission peaks",
+                               lambda: maps_mod.emission_peaks(writer.run, writer.label))
         if spectrum is not None:
-            marks = spots[["freq_hz", "level"]].assign(status="hot spot") \
-                if spots is not None and len(spots) else None
+            marks = peaks[["freq_hz", "level"]].assign(status="emission") \
+                if peaks is not None and len(peaks) else None
             writer.spectrum_picture(spectrum, marks)
-        _draw_maps(writer, spots)
-        if spots is not None:
-            _hot_spot_table(writer, spots)
+        if peaks is not None:
+            _emission_table(writer, peaks)
+        _draw_maps(writer, peaks)
         if spectrum is not None:
             writer.chain_block(spectrum)
 
-    def compare_parts(self, run_b, run_a, label: str, out: Path, outline) -> list[str]:
+    def compare_parts(self, run_b, run_a, label: str, out: Path, outline):
         return _compare_maps(run_b, run_a, label, out, outline)
 
 
@@ -342,11 +346,11 @@ def _board_photo(writer, board: dict):
     return photo_path
 
 
-def _map_views(writer, spots) -> list[tuple[str, dict]]:
+def _map_views(writer, peaks) -> list[tuple[str, dict]]:
     views = [("map", {})]  # maximum over the whole span
-    if spots is not None and len(spots):
-        # one map per flagged peak, strongest first (as many as asked for)
-        for rank, freq in enumerate(spots["freq_hz"].head(writer.views.peaks), start=1):
+    if peaks is not None and len(peaks):
+        # one map per emission peak, strongest first (as many as asked for)
+        for rank, freq in enumerate(peaks["freq_hz"].head(writer.views.peaks), start=1):
             views.append((f"map-peak{rank}", {"freq_hz": float(freq)}))
     for freq in writer.views.freqs_hz:
         views.append((f"map-{freq / 1e6:.6g}MHz", {"freq_hz": float(freq)}))
@@ -370,45 +374,63 @@ def _map_png(writer, gm, suffix: str, board: dict, photo_path, spots) -> Path:
     return plots.map_png(writer.png(suffix), gm, **common)
 
 
-def _draw_maps(writer, spots) -> None:
+def _draw_maps(writer, peaks) -> None:
     from bench.analysis import maps as maps_mod
     from bench.analysis import runview
     from bench.htmlkit import embed_png, esc
 
     board = writer.run.manifest().get("board", {})
     photo_path = _board_photo(writer, board)
-    for suffix, kwargs in _map_views(writer, spots):
+    for suffix, kwargs in _map_views(writer, peaks):
         gm = writer.attempt("map", lambda kw=kwargs: maps_mod.grid_maps(writer.run, writer.label, **kw))
         if gm is None:
             continue
+        spots = gm.hot_spots()  # each map its own, computed once for the picture and the table
         path = _map_png(writer, gm, suffix, board, photo_path, spots)
+        writer.parts.append(f"<h3>Map: {esc(gm.what)}</h3>")
         writer.parts.append(embed_png(path, f"map of {writer.label} {gm.what}"))
         peak = writer.attempt("combined map", gm.peak)
-        if peak is None:
-            continue
-        x, y, level = peak
-        writer.parts.append(f"<p>Combined-map maximum {level:.1f} "
-                            f"{esc(runview.UNIT_TEXT.get(gm.unit, gm.unit))} at x = "
-                            f"{x * 1e3:.1f} mm, y = {y * 1e3:.1f} mm ({esc(gm.what)}).</p>")
+        if peak is not None:
+            x, y, level = peak
+            writer.parts.append(f"<p>Combined-map maximum {level:.1f} "
+                                f"{esc(runview.UNIT_TEXT.get(gm.unit, gm.unit))} at x = "
+                                f"{x * 1e3:.1f} mm, y = {y * 1e3:.1f} mm ({esc(gm.what)}).</p>")
+        writer.parts.append(_hot_spot_table(spots, runview.UNIT_TEXT.get(gm.unit, gm.unit)))
 
 
-def _hot_spot_table(writer, spots) -> None:
-    from bench.htmlkit import html_table, mhz, mm
+def _hot_spot_table(spots, unit_text: str) -> str:
+    """HTML table of map hot spots (numbered as on the maps), edge spots noted."""
+    from bench.analysis.maps import EDGE_NOTE
+    from bench.htmlkit import esc, html_table, mm
 
-    writer.parts.append("<h3>Hot spots (numbered on the maps)</h3>")
-    numbered = spots.reset_index(drop=True)
+    if not len(spots):
+        return "<p>No hot spot: no position stands out of its map (docs/physics.md, section 4).</p>"
+    shown = spots.assign(note=[EDGE_NOTE if edge else "" for edge in spots["at_edge"]])
+    heads = tuple((c, f"level ({unit_text})" if c == "level" else h) for c, h in _HOT_SPOT_COLUMNS)
+    return (f"<p>Hot spots of each map ({esc(unit_text)}), numbered as on the map:</p>"
+            + html_table(shown, heads, formats={"level": ".2f", "x_m": mm, "y_m": mm,
+                                                "prominence_db": ".1f"}))
+
+
+def _emission_table(writer, peaks) -> None:
+    from bench.htmlkit import html_table, mhz
+
+    writer.parts.append("<h3>Emission peaks of the scan (maximum over all positions; a map of "
+                        "each of the strongest follows)</h3>")
+    numbered = peaks.reset_index(drop=True)
     numbered.insert(0, "rank", np.arange(1, len(numbered) + 1))
-    writer.parts.append(html_table(numbered, (("rank", "#"),) + _HOT_SPOT_COLUMNS,
-                                   formats={"freq_hz": mhz, "level": ".2f", "x_m": mm,
-                                            "y_m": mm, "rotation_deg": ".0f",
+    writer.parts.append(html_table(numbered, _EMISSION_COLUMNS,
+                                   formats={"freq_hz": mhz, "level": ".2f",
                                             "prominence_db": ".1f"}))
 
 
-def _compare_maps(run_b, run_a, label: str, out: Path, outline) -> list[str]:
-    """Combined-map change after minus before, the largest improvement, both hot-spot tables."""
+def _compare_maps(run_b, run_a, label: str, out: Path, outline):
+    """Combined-map change after minus before (its extremes join the summary), hot-spot tables."""
     from bench import plots
     from bench.analysis import maps as maps_mod
-    from bench.htmlkit import embed_png, html_table, mhz, safe_name
+    from bench.analysis import runview
+    from bench.analysis.changes import ChangeExtremes, KindComparison
+    from bench.htmlkit import embed_png, esc, safe_name
 
     maps_b, maps_a = maps_mod.grid_maps(run_b, label), maps_mod.grid_maps(run_a, label)
     change = maps_mod.compare_maps(maps_b, maps_a)
@@ -416,16 +438,15 @@ def _compare_maps(run_b, run_a, label: str, out: Path, outline) -> list[str]:
                                change.y_m, change.delta_db,
                                title=f"{label}: combined map change ({maps_a.what})",
                                outline_m=outline)
-    parts = [embed_png(path, f"map change of {label}")]
-    if np.any(np.isfinite(change.delta_db)):
-        iy, ix = np.unravel_index(int(np.nanargmin(change.delta_db)), change.delta_db.shape)
-        parts.append(f"<p>Largest map improvement {change.delta_db[iy, ix]:+.1f} dB at x = "
-                     f"{change.x_m[ix] * 1e3:.1f} mm, y = {change.y_m[iy] * 1e3:.1f} mm.</p>")
-    fmt = {"freq_hz": mhz, "level": ".2f", "x_m": lambda v: (v * 1e3, ".1f"),
-           "y_m": lambda v: (v * 1e3, ".1f"), "rotation_deg": ".0f", "prominence_db": ".1f"}
-    heads = (("freq_hz", "frequency (MHz)"), ("level", "level"), ("x_m", "x (mm)"),
-             ("y_m", "y (mm)"), ("rotation_deg", "rotation (deg)"))
-    for name, run in (("before", run_b), ("after", run_a)):
-        spots = maps_mod.hot_spots(run, label)
-        parts.append(f"<h4>Hot spots {name}</h4>" + html_table(spots, heads, formats=fmt))
-    return parts
+    yy, xx = np.meshgrid(change.y_m, change.x_m, indexing="ij")
+    places = [f"x = {x * 1e3:.1f} mm, y = {y * 1e3:.1f} mm" for x, y in zip(xx.ravel(), yy.ravel())]
+    extremes = ChangeExtremes.of("combined map", "position", change.delta_db, places)
+    html = [embed_png(path, f"map change of {label}")]
+    if extremes is not None:
+        html.append(f"<p>Map change, {esc(maps_a.what)}: {esc(extremes.text())}.</p>")
+    unit_text = runview.UNIT_TEXT.get(maps_a.unit, maps_a.unit)
+    for name, gm in (("before", maps_b), ("after", maps_a)):
+        main = gm.panels()[-1][0]  # the combined map (the only map with one rotation)
+        html.append(f"<h4>Hot spots {name} ({esc(main)} map, {esc(gm.what)})</h4>"
+                    + _hot_spot_table(gm.hot_spots(main), unit_text))
+    return KindComparison(() if extremes is None else (extremes,), tuple(html))
