@@ -86,6 +86,8 @@ DEMO_BOARD_FILE = "demo-board.toml"
 
 Name = Annotated[StrictStr, Field(min_length=1)]
 PositiveHz = quantity("frequency", positive=True)
+#: A radio frequency: "30 mHz" (millihertz) there is a case slip for "30 MHz" and is refused.
+RadioHz = quantity("frequency", positive=True, radio=True)
 PositiveMetre = quantity("length", positive=True)
 NonNegativeMetre = quantity("length", non_negative=True)
 PositiveSecond = quantity("time", positive=True)
@@ -146,7 +148,7 @@ def _gain_row(rows: Any, index: int, previous_hz: float | None) -> tuple[float, 
         raise cross_check_error([((index,), 'expected a row [frequency, gain] like '
                                             f'["100 MHz", "1.5 dBi"], found {format_value(row)}')])
     try:
-        freq_hz = parse(row[0], "frequency")
+        freq_hz = parse(row[0], "frequency", radio=True)
     except ConfigError as exc:
         raise cross_check_error([((index, 0), exc.message)]) from None
     if not freq_hz > 0.0:
@@ -265,7 +267,7 @@ class _Dipole(_Placed):
 class _Trapezoid(_Dipole):
     """A trapezoidal waveform: frequency in Hz, amplitude in V, rise time in s, impedance in ohm."""
 
-    frequency_hz: PositiveHz = Field(alias="frequency")
+    frequency_hz: RadioHz = Field(alias="frequency")
     amplitude_v: PositiveVolt = Field(alias="amplitude")
     duty: Fraction
     rise_time_s: PositiveSecond = Field(alias="rise_time")
@@ -296,7 +298,7 @@ class SwitcherEmitter(_Trapezoid):
     """
 
     kind: Literal["switcher"]
-    ring_frequency_hz: Optional[PositiveHz] = Field(default=None, alias="ring_frequency")
+    ring_frequency_hz: Optional[RadioHz] = Field(default=None, alias="ring_frequency")
     ring_q: Optional[PositiveNumber] = None
 
     @pydantic.model_validator(mode="after")
@@ -314,7 +316,7 @@ class SpurEmitter(_Dipole):
     """A single CW line (e.g. a PLL spur): ``frequency`` in Hz, peak ``current`` in A."""
 
     kind: Literal["spur"]
-    frequency_hz: PositiveHz = Field(alias="frequency")
+    frequency_hz: RadioHz = Field(alias="frequency")
     current_a: PositiveAmpere = Field(alias="current")
 
 
@@ -326,7 +328,7 @@ class BurstEmitter(_Dipole):
     """
 
     kind: Literal["burst"]
-    frequency_hz: PositiveHz = Field(alias="frequency")
+    frequency_hz: RadioHz = Field(alias="frequency")
     current_a: PositiveAmpere = Field(alias="current")
     repetition_hz: PositiveHz = Field(alias="repetition")
     duty: Annotated[StrictFloat, Field(gt=0.0, le=1.0)]
@@ -369,7 +371,7 @@ class Ambient(_Model):
     """
 
     name: Name
-    frequency_hz: PositiveHz = Field(alias="frequency")
+    frequency_hz: RadioHz = Field(alias="frequency")
     field_dbuv_per_m: DbuvPerM = Field(alias="field")
     polarization: Literal["horizontal", "vertical", "both"] = "both"
 
