@@ -78,3 +78,19 @@ def test_error_tree_public_names():
     for name in errors.__all__:
         assert issubclass(getattr(errors, name), errors.BenchError)
     assert errors.ConfigError.exit_code == 2
+
+
+def test_one_line_server_serves_every_simulated_dialect():
+    # G-code, the positioner line protocol and SCPI are all served by bench/sim/lineserver.py:
+    # no other simulator module opens sockets, servers or pseudo-terminals of its own
+    owners = set()
+    for name, path in module_files():
+        if not name.startswith("bench.sim."):
+            continue
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        for node in ast.walk(tree):
+            names = [a.name for a in node.names] if isinstance(node, ast.Import) else (
+                [node.module] if isinstance(node, ast.ImportFrom) and node.module else [])
+            if any(n in ("socket", "socketserver", "pty", "tty", "select") for n in names):
+                owners.add(name)
+    assert owners == {"bench.sim.lineserver"}
