@@ -44,6 +44,15 @@ FORBIDDEN = [
     ("bench.drivers", ("bench.run", "bench.runner", "bench.sim", "bench.store", "bench.analysis",
                        "bench.app", "bench.cli", "bench.report")),
     ("bench.transports", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis")),
+    # the transport layers: byte wires know nothing of framing, framing nothing of schemes
+    ("bench.wire", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis",
+                    "bench.framing", "bench.transports", "bench.visawire", "bench.serialwire")),
+    ("bench.visawire", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis",
+                        "bench.framing", "bench.transports", "bench.ieee488")),
+    ("bench.serialwire", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis",
+                          "bench.framing", "bench.transports", "bench.ieee488")),
+    ("bench.framing", ("bench.drivers", "bench.run", "bench.sim", "bench.store", "bench.analysis",
+                       "bench.transports", "bench.visawire", "bench.serialwire")),
     ("bench.analysis", ("bench.drivers", "bench.run", "bench.runner", "bench.sim", "bench.transports",
                         "bench.app", "bench.cli", "bench.station")),
     ("bench.store", ("bench.drivers", "bench.run", "bench.sim", "bench.transports", "bench.analysis")),
@@ -73,7 +82,8 @@ def test_error_tree_public_names():
 
     assert set(errors.__all__) == {
         "AnalysisError", "BenchError", "BlockFormatError", "ConfigError", "InstrumentError", "PlanError",
-        "ReplyTimeoutError", "SafetyLimitError", "StoreError", "TransportError", "UnitError",
+        "ProfileMismatchError", "ReplyFormatError", "ReplyTimeoutError", "SafetyLimitError", "StoreError",
+        "TransportError", "UnitError",
     }
     for name in errors.__all__:
         assert issubclass(getattr(errors, name), errors.BenchError)
