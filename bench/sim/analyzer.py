@@ -1,8 +1,13 @@
 """The simulated swept spectrum analyzer: its settings, couplings, sweeps and trace replies.
 
 Served as an SCPI instrument by :mod:`bench.sim.scpiserver`; every trace is computed from the
-world (:mod:`bench.sim.receiver`) at the pose in the shared state. The command table is
-:data:`ANALYZER_ROWS`.
+world (:mod:`bench.sim.receiver`) at the pose in the shared state, and sent in the format and
+byte order selected (:mod:`bench.sim.traceformat`). The command table is :data:`ANALYZER_ROWS`.
+
+Sweep completion can be awaited in the three usual ways: ``INIT;*OPC?`` (the reply comes when the
+sweep is done), ``INIT;*OPC`` then polling ``*ESR?`` for bit 0 (IEEE 488.2 operation complete),
+or ``INIT`` then polling ``STAT:OPER:COND?`` until bit 3 (SWEeping, value 8) clears (SCPI-1999
+operation status register, from memory).
 """
 
 from __future__ import annotations
@@ -36,6 +41,7 @@ from bench.sim.scpisyntax import (
     setting_row,
 )
 from bench.sim.state import SimState
+from bench.sim.traceformat import encode_trace
 
 __all__ = [
     "ANALYZER_IDN",
@@ -45,6 +51,8 @@ __all__ = [
     "AnalyzerSetup",
     "FREQ_MAX_HZ",
     "FREQ_MIN_HZ",
+    "OPER_SWEEPING_BIT",
+    "POLL_QUANTUM_S",
     "POINTS_MAX",
     "POINTS_MIN",
     "QUES_POWER_BIT",
@@ -65,6 +73,10 @@ RLEV_MIN_DBM, RLEV_MAX_DBM = -130.0, 30.0
 SWEEP_TIME_MIN_S, SWEEP_TIME_MAX_S = 1e-3, 16000.0
 #: Questionable status register bit 3 (POWer summary), set while the last sweep was overloaded.
 QUES_POWER_BIT = 8
+#: Operation status register bit 3 (SWEeping), set while a sweep runs.
+OPER_SWEEPING_BIT = 8
+#: Sweep time one status poll stands for (a host polls every few tens of milliseconds).
+POLL_QUANTUM_S = 0.05
 
 
 @dataclass
@@ -89,6 +101,8 @@ class AnalyzerSetup:
     byte_order: str = "NORM"
     unit: str = "DBM"
     marker_on: bool = False
+    mode: str = "SAN"
+    display_on: bool = True
 
 
 def _rbw_for_span(span_hz: float) -> float:
@@ -123,6 +137,11 @@ class SimAnalyzer(ScpiInstrument):
     the current format and unit. The mixer level counts only the lines of that range (no
     out-of-span overload).
 
+    A sweep started by ``INIT`` stays pending for ceil(sweep time / :data:`POLL_QUANTUM_S`)
+    status polls (``*ESR?``, ``*STB?``, ``STAT:OPER:COND?``): its time has already passed on
+    the clock, the polls only show it running. ``*OPC?``, ``*WAI``, ``ABORt``, a new ``INIT``
+    and every query that needs the result (``TRAC?``, the markers) end it at once.
+
     Parameters
     ----------
     world : object
@@ -156,6 +175,8 @@ class SimAnalyzer(ScpiInstrument):
         self.sweep_count = 0
         self.marker_index = 0
         self.ques_event = 0
+        self._polls_left = 0  # status polls before the pending sweep shows as done
+        self._opc_armed = False  # *OPC received while a sweep was pending
         self._injector = FaultInjector(self.faults)
 
     def open_session(self) -> SimAnalyzer:
@@ -165,12 +186,53 @@ class SimAnalyzer(ScpiInstrument):
         return self
 
     def reset(self) -> None:
+        """``*RST``: the settings of :class:`AnalyzerSetup`, no sweep, nothing pending."""
         self.setup = AnalyzerSetup()
         self.last_sweep = None
+        self._polls_left, self._opc_armed = 0, False
 
     def clear_status(self) -> None:
+        """``*CLS``: also forgets a pending ``*OPC`` (IEEE 488.2 operation complete idle state)."""
         super().clear_status()
         self.ques_event = 0
+        self._opc_armed = False
+
+    # -- the pending sweep (overlapped INIT)
+    def start_sweep(self) -> None:
+        """``INIT[:IMM]``: end the pending sweep, take a new one and leave it pending."""
+        self.complete_operations()
+        result = self.run_sweep()
+        self._polls_left = max(1, math.ceil(result.sweep_time_s / POLL_QUANTUM_S))
+
+    def poll_status(self) -> None:
+        """One status poll: the pending sweep is one poll closer to its end."""
+        if self._polls_left > 0:
+            self._polls_left -= 1
+            if self._polls_left == 0:
+                self._operation_done()
+
+    def complete_operations(self) -> None:
+        """End the pending sweep now."""
+        if self._polls_left > 0:
+            self._polls_left = 0
+            self._operation_done()
+
+    def request_opc(self) -> None:
+        """``*OPC``: ESR bit 0 now, or when the pending sweep ends."""
+        if self._polls_left > 0:
+            self._opc_armed = True
+        else:
+            self.esr |= 1
+
+    def _operation_done(self) -> None:
+        if self._opc_armed:
+            self.esr |= 1
+            self._opc_armed = False
+
+    def operation_condition(self) -> str:
+        """``STAT:OPER:COND?``: SWEeping (bit 3) while a sweep is pending; a status poll."""
+        self.poll_status()
+        return str(OPER_SWEEPING_BIT if self._polls_left > 0 else 0)
 
     def receiver_settings(self) -> receiver.ReceiverSettings:
         """The receiver model's settings for the current setup, with couplings resolved."""
@@ -217,22 +279,17 @@ class SimAnalyzer(ScpiInstrument):
         return units.dbm_to_dbuv(level_dbm) if self.setup.unit == "DBUV" else level_dbm
 
     def trace_reply(self, args: list[str]) -> bytes:
-        """``TRACe[:DATA]? [TRACE1]``: the last sweep as a 488.2 block or ASCII list."""
+        """``TRACe[:DATA]? [TRACE1]``: the last sweep in the current format, unit and byte order."""
         if len(args) > 1:
             raise ScpiError(-108, f"{len(args)} parameters")
         if args and not re.fullmatch(r"TRAC(E)?1", args[0].upper()):
             raise ScpiError(-224, f"expected TRACE1, found {args[0]!r}")
         values = self.to_unit(self._current_sweep().level_dbm)
-        fmt = self.setup.data_format
-        if fmt == "ASC":
-            return ",".join(format(v, ".8g") for v in values.tolist()).encode("ascii")
-        order = ">" if self.setup.byte_order == "NORM" else "<"
-        payload = values.astype(f"{order}f{4 if fmt == 'REAL,32' else 8}").tobytes()
-        length = str(len(payload))
-        return f"#{len(length)}{length}".encode("ascii") + payload
+        return encode_trace(values, self.setup.data_format, self.setup.byte_order)
 
     def _current_sweep(self) -> receiver.Sweep:
-        """The sweep to report: a fresh one in continuous mode, else the last one."""
+        """The sweep to report: a fresh one in continuous mode, else the last one (ended now)."""
+        self.complete_operations()
         if self.setup.continuous:
             return self.run_sweep()
         if self.last_sweep is None:
@@ -249,6 +306,7 @@ class SimAnalyzer(ScpiInstrument):
         self.marker_index = int(np.argmin(np.abs(sweep.freq_hz - freq_hz)))
 
     def _marked_sweep(self) -> receiver.Sweep:
+        self.complete_operations()
         if not self.setup.marker_on:
             raise ScpiError(-221, "marker is off, send CALC:MARK:MAX or CALC:MARK:STAT ON")
         if self.last_sweep is None:
@@ -328,7 +386,7 @@ def _ques_condition(inst: SimAnalyzer) -> str:
 
 
 def _init_immediate(inst: SimAnalyzer) -> None:
-    inst.run_sweep()
+    inst.start_sweep()
 
 
 ANALYZER_ROWS: tuple[Row, ...] = COMMON_ROWS + (
@@ -361,7 +419,7 @@ ANALYZER_ROWS: tuple[Row, ...] = COMMON_ROWS + (
                 "attenuation_auto", Boolean()),
     setting_row("INITiate:CONTinuous", "continuous", Boolean()),
     event_row("INITiate[:IMMediate]", _init_immediate),
-    event_row("ABORt", lambda inst: None),  # sweeps complete atomically in the simulator
+    event_row("ABORt", SimAnalyzer.complete_operations),  # the sweep's data are already there
     setting_row("FORMat[:DATA]", "data_format", DataFormat()),
     setting_row("FORMat:BORDer", "byte_order", Choice((("NORMal", "NORM"), ("SWAPped", "SWAP")))),
     setting_row("UNIT:POWer", "unit", Choice((("DBM", "DBM"), ("DBUV", "DBUV")))),
@@ -374,5 +432,8 @@ ANALYZER_ROWS: tuple[Row, ...] = COMMON_ROWS + (
     query_row("STATus:QUEStionable[:EVENt]", _ques_event),
     query_row("STATus:QUEStionable:CONDition", _ques_condition),
     event_row("STATus:PRESet", lambda inst: setattr(inst, "ques_event", 0)),
+    query_row("STATus:OPERation:CONDition", SimAnalyzer.operation_condition),
+    setting_row("INSTrument[:SELect]", "mode", Choice((("SANalyzer", "SAN"),))),
+    setting_row("DISPlay:ENABle", "display_on", Boolean()),
 )
 

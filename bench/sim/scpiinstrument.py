@@ -100,6 +100,21 @@ class ScpiInstrument:
     def reset(self) -> None:
         """``*RST``: subclasses restore their settings."""
 
+    # -- pending operations (IEEE 488.2 *OPC, *OPC?, *WAI; overlapped commands)
+    def poll_status(self) -> None:
+        """A status register is being read (``*ESR?``, ``*STB?``, ...): one poll's time passes.
+
+        Nothing runs in the background here; an instrument with overlapped operations
+        (:class:`~bench.sim.analyzer.SimAnalyzer`) moves them on.
+        """
+
+    def complete_operations(self) -> None:
+        """Finish every pending operation (``*OPC?``, ``*WAI`` and queries that need a result)."""
+
+    def request_opc(self) -> None:
+        """``*OPC``: set ESR bit 0 (operation complete) once nothing is pending; at once here."""
+        self.esr |= 1
+
     def clear_status(self) -> None:
         self._errors.clear()
         self.esr = 0
@@ -150,27 +165,33 @@ def esr_bit(code: int) -> int:
 
 
 def _read_and_clear_esr(inst: ScpiInstrument) -> str:
+    inst.poll_status()
     value, inst.esr = inst.esr, 0
     return str(value)
 
 
-def _set_opc(inst: ScpiInstrument) -> None:
-    inst.esr |= 1  # every operation completes before the next command is read
+def _status_byte(inst: ScpiInstrument) -> str:
+    inst.poll_status()
+    return str(inst.status_byte())
+
+
+def _opc_query(inst: ScpiInstrument, _args: list[str]) -> str:
+    inst.complete_operations()  # *OPC? answers once every pending operation is done
+    return "1"
 
 
 COMMON_ROWS: tuple[Row, ...] = (
     query_row("*IDN", lambda inst: inst.identity),
     event_row("*RST", lambda inst: inst.reset()),
     event_row("*CLS", lambda inst: inst.clear_status()),
-    # every operation completes before the next command is read: *OPC? answers 1 at once
-    Row(("*OPC",), None, lambda inst, _v: _set_opc(inst), lambda inst, args: "1"),
-    event_row("*WAI", lambda inst: None),
+    Row(("*OPC",), None, lambda inst, _v: inst.request_opc(), _opc_query),
+    event_row("*WAI", lambda inst: inst.complete_operations()),
     query_row("*ESR", _read_and_clear_esr),
     Row(("*ESE",), Number("", 0, 255, 0, integer=True),
         lambda inst, v: setattr(inst, "ese", int(v)), lambda inst, a: str(inst.ese)),
     Row(("*SRE",), Number("", 0, 255, 0, integer=True),
         lambda inst, v: setattr(inst, "sre", int(v)), lambda inst, a: str(inst.sre)),
-    query_row("*STB", lambda inst: str(inst.status_byte())),
+    query_row("*STB", _status_byte),
     query_row("*TST", lambda inst: "0"),
     query_row("SYSTem:ERRor[:NEXT]", lambda inst: inst.next_error()),
     query_row("SYSTem:ERRor:COUNt", lambda inst: str(len(inst._errors))),

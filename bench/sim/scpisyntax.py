@@ -206,11 +206,11 @@ class Choice:
 
 @dataclass(frozen=True)
 class DataFormat:
-    """FORMat[:DATA] ASCii | REAL[,32|64]."""
+    """FORMat[:DATA] ASCii | REAL[,32|64] | INTeger[,32]."""
 
     def parse(self, args: Sequence[str]) -> str:
         if not args:
-            raise ScpiError(-109, "expected ASCii or REAL,32")
+            raise ScpiError(-109, "expected ASCii, REAL,32, REAL,64 or INTeger,32")
         if len(args) > 2:
             raise ScpiError(-108, f"{len(args)} parameters")
         if keyword_matches(args[0], "ASCii") and len(args) == 1:
@@ -219,7 +219,9 @@ class DataFormat:
             width = args[1] if len(args) == 2 else "32"
             if width in ("32", "64"):
                 return f"REAL,{width}"
-        raise ScpiError(-224, f"expected ASCii or REAL,32 or REAL,64, found {','.join(args)!r}")
+        if keyword_matches(args[0], "INTeger") and (len(args) == 1 or args[1] == "32"):
+            return "INT,32"
+        raise ScpiError(-224, f"expected ASCii, REAL,32, REAL,64 or INTeger,32, found {','.join(args)!r}")
 
 
 def exactly_one(args: Sequence[str]) -> tuple[str]:
