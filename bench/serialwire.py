@@ -6,12 +6,16 @@ serial-to-LAN bridge), ``rfc2217://host:port`` a remote serial port, ``loop://``
 
 * pyserial's timeout is per read call and ``readline`` returns partial lines: this wire keeps its
   own buffer and enforces one overall deadline per read, reporting what arrived on a timeout.
+* A port with a file descriptor (device paths, ``socket://``) is read without blocking once
+  ``select`` says data are there, so a long reply arrives in large chunks; other handlers are
+  read with a short per-call timeout.
 * Device paths open with ``exclusive=True``: two processes on one port both read garbage.
 * pyserial and OS errors become :mod:`bench.errors` exceptions here.
 """
 
 from __future__ import annotations
 
+import select
 import threading
 import time
 from typing import Any
@@ -22,6 +26,7 @@ from bench.wire import TransportSettings, reply_timeout
 __all__ = ["SerialByteTransport", "is_url"]
 
 _POLL_S = 0.05  # longest single wait inside a read; the overall deadline is the caller's
+_CHUNK_BYTES = 1 << 16
 _URL_SCHEMES = ("socket://", "rfc2217://", "loop://", "spy://", "hwgrep://", "alt://")
 
 
@@ -41,9 +46,10 @@ class SerialByteTransport:
         The open port. The constructor does no I/O: use :meth:`open`.
     """
 
-    def __init__(self, address: str, port: Any) -> None:
+    def __init__(self, address: str, port: Any, fd: int | None = None) -> None:
         self.address = address
         self._port = port
+        self._fd = fd  # waited on with select; None: the port's own per-call timeout
         self._buffer = bytearray()
         self._lock = threading.RLock()
 
@@ -60,7 +66,10 @@ class SerialByteTransport:
             port = serial.serial_for_url(address, **kwargs)
         except (serial.SerialException, OSError, ValueError) as exc:
             raise TransportError(f"{address}: cannot open: {exc}") from exc
-        return cls(address, port)
+        fd = _descriptor(port)
+        if fd is not None:
+            port.timeout = 0  # reads take what is there; select does the waiting
+        return cls(address, port, fd)
 
     # ------------------------------------------------------------------ the byte interface
     def write(self, data: bytes, timeout_s: float) -> None:
@@ -129,15 +138,29 @@ class SerialByteTransport:
     def _receive(self, deadline: float, what: str, timeout_s: float, want: int | None = None) -> None:
         """Add what arrives within one poll (at most until ``deadline``) to the buffer.
 
-        With ``want`` it asks for that many bytes (pyserial returns early when they are there);
-        without, for what the port reports waiting, at least one byte.
+        ``want`` is how many bytes the caller still needs, when it knows.
         """
         import serial
 
-        if deadline - time.monotonic() <= 0:
+        remaining_s = deadline - time.monotonic()
+        if remaining_s <= 0:
             raise reply_timeout(self.address, what, timeout_s, bytes(self._buffer))
         try:
-            chunk = self._port.read(want if want else max(1, self._port.in_waiting))
-        except (serial.SerialException, OSError) as exc:
+            if self._fd is None:
+                chunk = self._port.read(want if want else max(1, self._port.in_waiting))
+            elif select.select([self._fd], [], [], min(remaining_s, _POLL_S))[0]:
+                chunk = self._port.read(want if want else _CHUNK_BYTES)
+            else:
+                chunk = b""
+        except (serial.SerialException, OSError, ValueError) as exc:
             raise TransportError(f"{self.address}: read: connection lost ({exc})") from exc
         self._buffer.extend(chunk)
+
+
+def _descriptor(port: Any) -> int | None:
+    """The port's file descriptor for ``select`` (pyserial offers one for ports and sockets)."""
+    try:
+        fd = port.fileno()
+    except (AttributeError, NotImplementedError, OSError, ValueError):
+        return None
+    return fd if isinstance(fd, int) and fd >= 0 else None

@@ -113,6 +113,7 @@ class SimulatedBench:
         self.clock.advance(seconds)
 
     def stop(self) -> None:
+        """Stop every server (errors while stopping are ignored)."""
         for server in reversed(self._servers):
             try:
                 server.stop()

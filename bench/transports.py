@@ -61,19 +61,26 @@ class Transport(Protocol):
 
     address: str
 
-    def write(self, text: str) -> None: ...
+    def write(self, text: str) -> None:
+        """Send one message (the write terminator is added)."""
 
-    def read_line(self, timeout_s: float | None = None) -> str: ...
+    def read_line(self, timeout_s: float | None = None) -> str:
+        """One text reply; ``timeout_s`` seconds at most (None: the default deadline)."""
 
-    def query(self, text: str, timeout_s: float | None = None) -> str: ...
+    def query(self, text: str, timeout_s: float | None = None) -> str:
+        """Send ``text``, return the reply line."""
 
-    def query_block(self, text: str, timeout_s: float | None = None) -> bytes: ...
+    def query_block(self, text: str, timeout_s: float | None = None) -> bytes:
+        """Send ``text``, return the data of the IEEE 488.2 block that answers it."""
 
-    def query_response(self, text: str, timeout_s: float | None = None) -> Response: ...
+    def query_response(self, text: str, timeout_s: float | None = None) -> Response:
+        """Send ``text``, return the reply whether a block or a line."""
 
-    def clear(self) -> None: ...
+    def clear(self) -> None:
+        """Discard whatever is in flight from the instrument."""
 
-    def close(self) -> None: ...
+    def close(self) -> None:
+        """Close the connection."""
 
 
 def is_visa_address(address: str) -> bool:

@@ -297,11 +297,13 @@ class SimAnalyzer(ScpiInstrument):
         return self.last_sweep
 
     def marker_peak(self) -> None:
+        """``CALC:MARK:MAX``: the marker to the highest point of the current sweep."""
         sweep = self._current_sweep()
         self.marker_index = int(np.argmax(sweep.level_dbm))
         self.setup.marker_on = True
 
     def marker_to(self, freq_hz: float) -> None:
+        """``CALC:MARK:X <f>``: the marker to the trace point nearest ``freq_hz``."""
         sweep = self._marked_sweep()
         self.marker_index = int(np.argmin(np.abs(sweep.freq_hz - freq_hz)))
 
@@ -314,36 +316,44 @@ class SimAnalyzer(ScpiInstrument):
         return self.last_sweep
 
     def marker_x(self) -> str:
+        """``CALC:MARK:X?``: the marker frequency, Hz."""
         return format_number(float(self._marked_sweep().freq_hz[self.marker_index]))
 
     def marker_y(self) -> str:
+        """``CALC:MARK:Y?``: the marker level in the current unit (dBm or dBuV)."""
         level = float(self._marked_sweep().level_dbm[self.marker_index])
         return format_number(round(float(self.to_unit(np.array([level]))[0]), 4))
 
     # -- frequency axis, kept consistent (start <= stop within FREQ_MIN..FREQ_MAX)
     def set_start(self, hz: float) -> None:
+        """``FREQ:STAR``: the stop frequency follows when it would fall below."""
         self.setup.start_hz = hz
         self.setup.stop_hz = max(self.setup.stop_hz, hz)
 
     def set_stop(self, hz: float) -> None:
+        """``FREQ:STOP``: the start frequency follows when it would rise above."""
         self.setup.stop_hz = hz
         self.setup.start_hz = min(self.setup.start_hz, hz)
 
     def set_center(self, hz: float) -> None:
+        """``FREQ:CENT``: keeps the span, narrowed to stay inside the frequency range."""
         half = min(self.span_hz / 2.0, hz - FREQ_MIN_HZ, FREQ_MAX_HZ - hz)
         self.setup.start_hz, self.setup.stop_hz = hz - half, hz + half
 
     def set_span(self, hz: float) -> None:
+        """``FREQ:SPAN``: keeps the centre, narrowed to stay inside the frequency range."""
         center = self.center_hz
         half = min(hz / 2.0, center - FREQ_MIN_HZ, FREQ_MAX_HZ - center)
         self.setup.start_hz, self.setup.stop_hz = center - half, center + half
 
     @property
     def center_hz(self) -> float:
+        """Centre frequency, Hz."""
         return (self.setup.start_hz + self.setup.stop_hz) / 2.0
 
     @property
     def span_hz(self) -> float:
+        """Span, Hz (0: zero span)."""
         return self.setup.stop_hz - self.setup.start_hz
 
 

@@ -94,6 +94,7 @@ class ScpiInstrument:
         return f'{code},"{text}"'
 
     def status_byte(self) -> int:
+        """IEEE 488.2 status byte: bit 2 error queue not empty, bit 5 ESB, bit 6 MSS."""
         stb = (4 if self._errors else 0) | (32 if self.esr & self.ese else 0)
         return stb | (64 if stb & self.sre else 0)
 
@@ -116,6 +117,7 @@ class ScpiInstrument:
         self.esr |= 1
 
     def clear_status(self) -> None:
+        """``*CLS``: empty the error queue and the standard event status register."""
         self._errors.clear()
         self.esr = 0
 

@@ -24,12 +24,14 @@ class _ScpiSession:
         self._handler = handler
 
     def banner_lines(self) -> list[str]:
+        """None: an SCPI instrument speaks only when asked."""
         return []  # an SCPI instrument speaks only when asked
 
     def count_bytes(self, n: int) -> None:
-        pass
+        """Not counted for SCPI instruments."""
 
     def handle(self, line: str, emit: Callable[[str | bytes], None]) -> None:
+        """Execute one program message and send the reply, if any."""
         reply = self._handler.handle_line(line)
         if reply:
             emit(reply)

@@ -143,6 +143,7 @@ class Number:
     step: float | None = None
 
     def parse(self, args: Sequence[str]) -> float:
+        """The number in SI (suffix applied), checked against the range and rounded."""
         (arg,) = exactly_one(args)
         named = self.limit(arg)
         if named is not None:
@@ -180,6 +181,7 @@ class Boolean:
     """ON|OFF|1|0 (any number: non-zero is ON, IEEE 488.2)."""
 
     def parse(self, args: Sequence[str]) -> bool:
+        """``ON``/``1`` -> True, ``OFF``/``0`` -> False."""
         (arg,) = exactly_one(args)
         if arg.upper() in ("ON", "OFF"):
             return arg.upper() == "ON"
@@ -196,6 +198,7 @@ class Choice:
     options: tuple[tuple[str, str], ...]
 
     def parse(self, args: Sequence[str]) -> str:
+        """The value of the option whose keyword the parameter spells."""
         (arg,) = exactly_one(args)
         for keyword, value in self.options:
             if keyword_matches(arg, keyword):
@@ -209,6 +212,7 @@ class DataFormat:
     """FORMat[:DATA] ASCii | REAL[,32|64] | INTeger[,32]."""
 
     def parse(self, args: Sequence[str]) -> str:
+        """``"ASC"``, ``"REAL,32"``, ``"REAL,64"`` or ``"INT,32"``."""
         if not args:
             raise ScpiError(-109, "expected ASCii, REAL,32, REAL,64 or INTeger,32")
         if len(args) > 2:
@@ -225,6 +229,7 @@ class DataFormat:
 
 
 def exactly_one(args: Sequence[str]) -> tuple[str]:
+    """The one parameter of ``args`` (-109 when missing, -108 when more)."""
     if not args:
         raise ScpiError(-109)
     if len(args) > 1:
@@ -262,6 +267,7 @@ class Row:
         object.__setattr__(self, "regexes", tuple(compile_header(h) for h in self.headers))
 
     def matches(self, header: str) -> bool:
+        """True when the upper-cased ``header`` is one of this row's headers."""
         return any(rx.match(header) for rx in self.regexes)
 
 
@@ -300,17 +306,20 @@ def _reply(value: Any) -> str:
 
 
 def no_args(args: Sequence[str]) -> None:
+    """Refuse parameters (-108)."""
     if args:
         raise ScpiError(-108, f"{len(args)} unexpected parameters")
 
 
 def event_row(headers: str | tuple[str, ...], action: Callable[[Any], None]) -> Row:
+    """Row for a command without parameter and without query form (``*CLS``, ``INIT``)."""
     def set_(inst: Any, _value: None) -> None:
         action(inst)
     return Row(headers if isinstance(headers, tuple) else (headers,), None, set_, None)
 
 
 def query_row(headers: str | tuple[str, ...], getter: Callable[[Any], str | bytes]) -> Row:
+    """Row for a query without parameter and without set form (``*IDN?``)."""
     def get(inst: Any, args: list[str]) -> str | bytes:
         no_args(args)
         return getter(inst)
@@ -331,7 +340,6 @@ def split_unit(unit: str) -> tuple[str, list[str]]:
     if any(not a for a in args):
         raise ScpiError(-102, f"empty parameter in {unit!r}")
     return header, args
-
 
 
 def number_row(headers: str | tuple[str, ...], param: Number,
