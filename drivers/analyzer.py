@@ -31,7 +31,7 @@ from bench.drivers.analyzer_profile import (
     TraceFormat,
     load_analyzer_profile,
 )
-from bench.errors import BlockFormatError, InstrumentError, PlanError, ReplyTimeoutError
+from bench.errors import BlockFormatError, InstrumentError, PlanError, ReplyFormatError, ReplyTimeoutError
 from bench.ieee488 import decode_ascii, decode_binary
 
 __all__ = ["AnalyzerProfile", "Analyzer", "SweepSettings", "load_analyzer_profile", "points_for_step",
@@ -256,7 +256,10 @@ class Analyzer:
         """
         trace = self.profile.trace
         reply = self.transport.query_response(trace.fetch)
-        values = self._decode(trace, reply, points)
+        try:
+            values = self._decode(trace, reply, points)
+        except ReplyFormatError as exc:
+            raise type(exc)(f"{self.address}: reply to {trace.fetch!r}: {exc}") from exc
         if values.size != points:
             raise BlockFormatError(f"{self.address}: expected {points} trace points, found {values.size}")
         self._check_levels(trace, reply.data, values)
@@ -282,8 +285,8 @@ class Analyzer:
         sent = n_bytes // points if points and n_bytes % points == 0 else None
         if sent is not None and sent != width and sent in BINARY_WIDTHS.values():
             raise self.profile.mismatch(("trace", "use"), (
-                f"{self.address} sent {points} values of {sent} bytes ({n_bytes} bytes) for {trace.fetch!r}; "
-                f"trace.use = {trace.kind!r} has {width}-byte values"))
+                f"{self.address} sent {n_bytes} bytes for {points} points of {trace.fetch!r}: {sent} bytes per "
+                f"point, but trace.use = {trace.kind!r} has {width}-byte values"))
 
     def _check_levels(self, trace: TraceFormat, payload: bytes, values: np.ndarray) -> None:
         """Refuse NaN, Inf and levels no analyzer reads; name the byte order when it is the cause."""

@@ -25,6 +25,7 @@ from bench.errors import (
     ConfigError,
     InstrumentError,
     ProfileMismatchError,
+    ReplyFormatError,
     ReplyTimeoutError,
     TransportError,
 )
@@ -123,18 +124,20 @@ def test_every_setting_row_of_both_profiles_sends_its_exact_bytes(name, expected
     assert bytes(tr.wire.written) == "".join(f"{c}\n" for c in expected).encode("ascii")
 
 
-@pytest.mark.parametrize(("detector", "polled_spelling"), [
-    ("peak", "POSitive"), ("negative", "NEGative"), ("sample", "SAMPle"), ("average", "AVERage"),
-    ("rms", "RMS"), ("quasi-peak", "QPEak"), ("cispr-average", "CAVerage"),
+@pytest.mark.parametrize(("detector", "short", "long"), [
+    ("negative", "NEG", "NEGative"), ("sample", "SAMP", "SAMPle"), ("average", "AVER", "AVERage"),
+    ("rms", "RMS", "RMS"), ("quasi-peak", "QPE", "QPEak"), ("cispr-average", "CAV", "CAVerage"),
 ])
-def test_every_detector_row_of_the_polled_profile(detector, polled_spelling):
-    an, tr, _ = rig(load_analyzer_profile("scpi-analyzer-polled"))
-    an.configure(SweepSettings(30e6, 1e9, 120e3, 300e3, 101))
-    tr.sent.clear()
-    an.configure(SweepSettings(30e6, 1e9, 120e3, 300e3, 101, detector=detector))
-    expected = [] if detector == "peak" else [f"SENSe:DETector:FUNCtion {polled_spelling}",
-                                              "SYSTem:ERRor:NEXT?", "SENSe:SWEep:TIME?"]
-    assert tr.sent == expected
+def test_every_detector_row_of_both_profiles(detector, short, long):
+    for name, header, spelling, tail in (("scpi-analyzer", "DET", short, ["SYST:ERR?", "SWE:TIME?"]),
+                                         ("scpi-analyzer-polled", "SENSe:DETector:FUNCtion", long,
+                                          ["SYSTem:ERRor:NEXT?", "SENSe:SWEep:TIME?"])):
+        an, tr, _ = rig(load_analyzer_profile(name))
+        an.configure(SweepSettings(30e6, 1e9, 120e3, 300e3, 101))  # peak first
+        assert tr.sent[5] == f"{header} {'POS' if name == 'scpi-analyzer' else 'POSitive'}"
+        tr.sent.clear()
+        an.configure(SweepSettings(30e6, 1e9, 120e3, 300e3, 101, detector=detector))
+        assert tr.sent == [f"{header} {spelling}", *tail]
 
 
 def test_polled_profile_sweeps_by_polling_the_sweeping_bit_and_reads_real64_big_endian():
@@ -249,13 +252,14 @@ def _line_of(profile_name: str, key: str) -> int:
 
 @pytest.mark.parametrize(("profile_name", "reply", "key", "fragment"), [
     ("scpi-analyzer", block(RAMP, "<f8"), "trace.use",
-     r"sent 101 values of 8 bytes \(808 bytes\) for 'TRAC:DATA\? TRACE1'; trace.use = 'real32' has 4-byte values"),
+     r"sent 808 bytes for 101 points of 'TRAC:DATA\? TRACE1': 8 bytes per point, but trace.use = 'real32' "
+     r"has 4-byte values"),
     ("scpi-analyzer", block(RAMP, ">f4"), "trace.byte_order",
      r"sends big-endian real32 values: read little-endian the trace holds impossible levels"),
     ("scpi-analyzer", b"-100,-99.5\n", "trace.use",
      r"answered 'TRAC:DATA\? TRACE1' with text b'-100,-99.5'; trace.use = 'real32' expects an IEEE 488.2 block"),
     ("scpi-analyzer-polled", block(RAMP, ">f4"), "trace.use",
-     r"sent 101 values of 4 bytes \(404 bytes\) for 'TRACe:DATA\? TRACE1'; trace.use = 'real64' has 8-byte"),
+     r"sent 404 bytes for 101 points of 'TRACe:DATA\? TRACE1': 4 bytes per point, but trace.use = 'real64'"),
     ("scpi-analyzer-polled", block(RAMP, "<f8"), "trace.byte_order",
      r"sends little-endian real64 values: read big-endian"),
 ])
@@ -279,6 +283,20 @@ def test_a_block_where_ascii_was_declared_names_trace_use(tmp_path):
     with pytest.raises(ProfileMismatchError, match=r"variant.toml:\d+: trace.use: .* with an IEEE 488.2 block of "
                                                    r"404 bytes; trace.use = 'ascii' expects comma-separated numbers"):
         an.fetch_trace(101)
+
+
+def test_a_block_of_odd_size_names_the_address_and_the_query():
+    an, _, _ = rig(load_analyzer_profile("scpi-analyzer"), trace_reply=encode_block(b"\x00" * 403) + b"\n")
+    with pytest.raises(BlockFormatError, match=r"^TCPIP::192.0.2.10::5025::SOCKET: reply to 'TRAC:DATA\? TRACE1': "
+                                               r"real32 block of 403 bytes is not a multiple of 4$"):
+        an.fetch_trace(101)
+
+
+def test_ascii_that_is_not_numbers_is_a_reply_format_error(tmp_path):
+    profile = load_analyzer_profile(_variant(tmp_path, ('use = "real32"', 'use = "ascii"')))
+    an, _, _ = rig(profile, trace_reply=b"-50.5,OVER,-49\n")
+    with pytest.raises(ReplyFormatError, match=r"expected numbers separated by ',', found 'OVER'"):
+        an.fetch_trace(3)
 
 
 def test_garbage_that_no_byte_order_explains_is_a_block_format_error():

@@ -104,3 +104,26 @@ def test_one_line_server_serves_every_simulated_dialect():
             if any(n in ("socket", "socketserver", "pty", "tty", "select") for n in names):
                 owners.add(name)
     assert owners == {"bench.sim.lineserver"}
+
+
+SIM_MAY_IMPORT = ("bench.sim", "bench.physics", "bench.units", "bench.errors", "bench.tomlsource", "bench.ieee488")
+
+
+def test_the_simulator_imports_only_its_allowed_leaves():
+    # the other side of the wire knows the physics and the wire formats, nothing of the tool
+    offenders = []
+    for name, path in module_files():
+        if not name.startswith("bench.sim."):
+            continue
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Import):
+                names = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.module == "bench":
+                names = [f"bench.{a.name}" for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.module:
+                names = [node.module]
+            else:
+                continue
+            offenders += [f"{name} imports {n}" for n in names if n.startswith("bench")
+                          and not any(n == a or n.startswith(a + ".") for a in SIM_MAY_IMPORT)]
+    assert offenders == []
