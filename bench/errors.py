@@ -4,19 +4,23 @@
 
     BenchError                      anything this tool raises on purpose
     ├── ConfigError                 a file a person wrote is wrong (exit code 2, nothing written)
-    │   └── UnitError               a quantity string could not be read ("12 parsecs")
+    │   ├── UnitError               a quantity string could not be read ("12 parsecs")
+    │   └── ProfileMismatchError    an instrument's replies contradict its profile (trace format,
+    │                               byte order): found at run time, a retry cannot cure it
     ├── PlanError                   the sequence is valid but cannot run on this bench
     │   └── SafetyLimitError        a target lies outside soft limits / travel, refused before moving
     ├── InstrumentError             an instrument said no (SCPI error queue, G-code ``error:``)
     ├── TransportError              the wire failed: cannot open, closed by the peer
     │   ├── ReplyTimeoutError       no (complete) reply before the deadline
-    │   └── BlockFormatError        an IEEE 488.2 block was truncated or malformed
+    │   └── ReplyFormatError        a reply that cannot be read: not ASCII text, not the framing
+    │       └── BlockFormatError    an IEEE 488.2 block was truncated or malformed
     ├── StoreError                  the run folder cannot be read or written
     ├── AnalysisError               data cannot be analysed as asked (table does not cover a sweep)
     └── RunInterrupted              a run stopped before its end and is kept (exit code 3)
         └── OperatorStop            Ctrl-C or SIGTERM stopped the run (exit code 130)
 
-pyvisa and pyserial exceptions are translated where they enter (``bench.transports``) with
+pyvisa, pyserial and OS exceptions are translated where they enter (the byte wires of
+``bench.visawire`` and ``bench.serialwire``, the framing of ``bench.framing``) with
 ``raise ... from exc``; nothing above the transports sees a foreign exception.
 
 Every message is a single line meant for a person: which file, key, address or command, what was
@@ -33,6 +37,8 @@ __all__ = [
     "InstrumentError",
     "PlanError",
     "OperatorStop",
+    "ProfileMismatchError",
+    "ReplyFormatError",
     "ReplyTimeoutError",
     "RunInterrupted",
     "SafetyLimitError",
@@ -86,6 +92,15 @@ class UnitError(ConfigError):
     """A quantity string could not be parsed or has the wrong dimension."""
 
 
+class ProfileMismatchError(ConfigError):
+    """What an instrument sends contradicts its profile (e.g. the trace format or byte order).
+
+    Raised while talking to the instrument, located like any :class:`ConfigError` at the profile
+    key to change (``FILE:LINE: trace.use: ...``). The run engine does not retry it: the same
+    profile gets the same answer.
+    """
+
+
 class PlanError(BenchError):
     """A valid sequence that cannot run on the given bench (profile limits, tables, travel)."""
 
@@ -129,7 +144,11 @@ class ReplyTimeoutError(TransportError):
     """No complete reply arrived before the deadline."""
 
 
-class BlockFormatError(TransportError):
+class ReplyFormatError(TransportError):
+    """A reply could not be read: bytes that are not ASCII text, or not the expected framing."""
+
+
+class BlockFormatError(ReplyFormatError):
     """An IEEE 488.2 arbitrary block was truncated, corrupted or of an unexpected size."""
 
 

@@ -12,9 +12,14 @@ from __future__ import annotations
 
 import numpy as np
 
-from bench.errors import BlockFormatError
+from bench.errors import BlockFormatError, ReplyFormatError
 
-__all__ = ["parse_block", "encode_block", "decode_float32"]
+__all__ = ["parse_block", "encode_block", "decode_float32", "decode_binary", "decode_ascii",
+           "BINARY_DTYPES"]
+
+#: numpy type of one value of each binary trace format (byte order added when decoding):
+#: IEEE 754 binary32 and binary64, two's-complement 32-bit integers.
+BINARY_DTYPES = {"real32": "f4", "real64": "f8", "int32": "i4"}
 
 
 def parse_block(data: bytes, *, allow_trailing: bool = True) -> tuple[bytes, int]:
@@ -96,3 +101,54 @@ def decode_float32(payload: bytes, *, big_endian: bool, expected_points: int | N
     if not np.all(np.isfinite(values)):
         raise BlockFormatError("trace holds non-finite values (NaN or Inf): wrong byte order or corrupt data")
     return values
+
+
+def decode_binary(payload: bytes, kind: str, *, big_endian: bool) -> np.ndarray:
+    """Decode block data of one binary format into float64 values (no range check).
+
+    Parameters
+    ----------
+    payload : bytes
+        Block data bytes.
+    kind : str
+        ``"real32"``, ``"real64"`` or ``"int32"`` (:data:`BINARY_DTYPES`).
+    big_endian : bool
+        True for ``FORM:BORD NORM`` (SCPI-1999 FORMat:BORDer), False for ``SWAP``.
+
+    Raises
+    ------
+    BlockFormatError
+        When the payload is not a whole number of values.
+    """
+    dtype = np.dtype(BINARY_DTYPES[kind]).newbyteorder(">" if big_endian else "<")
+    if len(payload) % dtype.itemsize:
+        raise BlockFormatError(f"{kind} block of {len(payload)} bytes is not a multiple of {dtype.itemsize}")
+    with np.errstate(invalid="ignore"):  # bytes read in the wrong order may spell signalling NaNs
+        return np.frombuffer(payload, dtype=dtype).astype(np.float64)
+
+
+def decode_ascii(data: bytes, *, separator: str = ",") -> np.ndarray:
+    """Decode an ASCII list of numbers (``-50.25,-49.5,...``, SCPI NR1/NR2/NR3) into float64.
+
+    Raises
+    ------
+    ReplyFormatError
+        When an item is not a number.
+    """
+    text = data.decode("ascii", errors="replace").strip()
+    if not text:
+        return np.zeros(0)
+    items = text.split(separator)
+    try:
+        return np.array([float(item) for item in items], dtype=np.float64)
+    except ValueError:
+        bad = next(item for item in items if not _is_number(item))
+        raise ReplyFormatError(f"expected numbers separated by {separator!r}, found {bad.strip()[:20]!r}") from None
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True

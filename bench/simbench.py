@@ -114,7 +114,9 @@ class SimulatedBench:
         self._servers += [stage_tcp, stage_pty, positioners]
         self.addresses = {
             "analyzer": analyzer.resource,
+            "analyzer_socket": analyzer.url,
             "supply": supply.resource,
+            "supply_socket": supply.url,
             "stage": stage_tcp.url,
             "stage_pty": stage_pty.path,
             "mast": positioners.url,
@@ -127,6 +129,7 @@ class SimulatedBench:
         self.clock.advance(seconds)
 
     def stop(self) -> None:
+        """Stop every server (errors while stopping are ignored)."""
         for server in reversed(self._servers):
             try:
                 server.stop()
@@ -157,16 +160,27 @@ def start_simulated_bench(bench, *, board: Path | None = None, seed: int = 1, re
     addresses = sim.start()
     log.debug("simulated bench: analyzer %s, stage %s, mast/turntable %s, supply %s",
              addresses["analyzer"], addresses["stage"], addresses["mast"], addresses["supply"])
-    update = {"analyzer": bench.analyzer.model_copy(update={"address": addresses["analyzer"]})}
-    for role in ("stage", "mast", "turntable", "supply"):
+    update = {}
+    for role in ("analyzer", "stage", "mast", "turntable", "supply"):
         section = getattr(bench, role, None)
         if section is not None:
-            update[role] = section.model_copy(update={"address": addresses[role]})
+            update[role] = section.model_copy(update={"address": _simulated_address(role, section.address, addresses)})
     if getattr(bench, "supply", None) is None:
         from bench.benchfile import SupplySection
 
         update["supply"] = SupplySection.model_validate({"address": addresses["supply"]})
     return sim, bench.model_copy(update=update)
+
+
+def _simulated_address(role: str, original: str, addresses: dict[str, str]) -> str:
+    """The simulator's address for ``role``, over the same kind of wire the bench file names.
+
+    An SCPI instrument the bench file reaches at a ``socket://`` URL is reached at the
+    simulator's ``socket://`` URL too, so ``--sim`` runs the transport the bench would run.
+    """
+    if original.strip().lower().startswith("socket://") and f"{role}_socket" in addresses:
+        return addresses[f"{role}_socket"]
+    return addresses[role]
 
 
 def serve_forever(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False,

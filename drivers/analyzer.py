@@ -1,190 +1,48 @@
 """Generic SCPI swept spectrum analyzer.
 
-The code is the same for every analyzer; the profile (``drivers/profiles/*.toml``) holds the
-command spellings, detector names, limits, sweep-time constant and byte order. The driver is a
-table of settings plus a few verbs: :meth:`Analyzer.initialize`, :meth:`Analyzer.configure`,
-:meth:`Analyzer.sweep`, :meth:`Analyzer.fetch_trace`.
+The code is the same for every analyzer; the profile (``drivers/profiles/*.toml``, read by
+:mod:`bench.drivers.analyzer_profile`) holds the command spellings, detector names, limits,
+the commands sent on connect, the trace format and byte order, and how the end of a sweep is
+awaited. The driver is a table of settings plus a few verbs: :meth:`Analyzer.initialize`,
+:meth:`Analyzer.configure`, :meth:`Analyzer.sweep`, :meth:`Analyzer.fetch_trace`.
 
-Synchronisation is by ``*OPC?`` after ``INIT:IMM`` (no fixed sleeps); the reply deadline is the
-instrument's own sweep time (``SWE:TIME?``) plus the profile's timeout. Traces travel as
-``FORM REAL,32`` in an IEEE 488.2 definite block and are decoded with the byte order the profile
-declares (and sends).
+No fixed sleeps except the one a ``fixed-wait`` profile asks for: a sweep's deadline is the
+instrument's own sweep time (``SWE:TIME?``) times a factor plus the reply timeout, enforced as a
+reply deadline (``opc-query``) or as a count of polls (``status-poll``). Traces are decoded in the
+format and byte order the profile selects; a reply that contradicts the profile (a block where
+ASCII was expected, 8-byte values where 4 were, levels that only make sense in the other byte
+order) is a :class:`~bench.errors.ProfileMismatchError` naming the profile key to change.
 """
 
 from __future__ import annotations
 
 import math
+import time
+from collections.abc import Callable
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
 
 from bench import units
-from bench.drivers.profile import load_profile_source
-from bench.errors import ConfigError, InstrumentError, PlanError
-from bench.ieee488 import decode_float32
-from bench.transports import TransportSettings
+from bench.drivers.analyzer_profile import (
+    BINARY_WIDTHS,
+    AnalyzerProfile,
+    Completion,
+    TraceFormat,
+    load_analyzer_profile,
+)
+from bench.errors import BlockFormatError, InstrumentError, PlanError, ReplyFormatError, ReplyTimeoutError
+from bench.ieee488 import decode_ascii, decode_binary
 
-__all__ = ["AnalyzerProfile", "Analyzer", "SweepSettings", "load_analyzer_profile", "DETECTORS"]
+__all__ = ["AnalyzerProfile", "Analyzer", "SweepSettings", "load_analyzer_profile", "points_for_step",
+           "DETECTORS", "MAX_LEVEL_DB"]
 
 #: Detector names used in sequence files (trade terms); profiles map them to SCPI spellings.
 DETECTORS = ("peak", "negative", "sample", "average", "rms", "quasi-peak", "cispr-average")
 
-_SETTING_KEYS = ("start_hz", "stop_hz", "rbw_hz", "vbw_hz", "points", "detector",
-                 "ref_level_dbm", "attenuation_db", "sweep_time_s")
-_COMMAND_KEYS = ("identify", "reset", "clear_status", "error_query", "single_sweep_mode",
-                 "trace_format", "byte_order_little", "byte_order_big", "power_unit",
-                 "sweep_and_wait", "sweep_time_query", "sweep_time_auto", "fetch_trace")
-
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class _Io(_Strict):
-    read_termination: str = "\n"
-    write_termination: str = "\n"
-    timeout: str = "10 s"
-    open_timeout: str = "5 s"
-    byte_order: str = "little"
-
-    @field_validator("byte_order")
-    @classmethod
-    def _order(cls, v: str) -> str:
-        if v not in ("little", "big"):
-            raise ValueError(f"expected 'little' or 'big', found {v!r}")
-        return v
-
-
-class _Caps(_Strict):
-    max_points: int = Field(gt=1)
-    min_points: int = Field(gt=1)
-    freq_min: str
-    freq_max: str
-    rbw_min: str
-    rbw_max: str
-    sweep_time_k: float = Field(gt=0)
-    min_sweep_time: str
-    max_sweep_time: str = "4000 s"
-    transfer_rate: str
-    command_overhead: str
-    max_attenuation: str
-    damage_level: str
-
-
-class _Setting(_Strict):
-    set: str
-    query: str | None = None
-
-
-class _ProfileModel(_Strict):
-    schema_: int = Field(alias="schema")
-    name: str
-    kind: str
-    description: str = ""
-    io: _Io
-    capabilities: _Caps
-    detectors: dict[str, str]
-    settings: dict[str, _Setting]
-    commands: dict[str, str]
-    warning_codes: list[int] = []
-
-
-@dataclass(frozen=True)
-class AnalyzerProfile:
-    """A validated analyzer profile, with SI values.
-
-    Attributes mirror the TOML: see ``drivers/profiles/scpi-analyzer.toml``.
-    """
-
-    name: str
-    origin: str
-    description: str
-    io: TransportSettings
-    big_endian: bool
-    max_points: int
-    min_points: int
-    freq_min_hz: float
-    freq_max_hz: float
-    rbw_min_hz: float
-    rbw_max_hz: float
-    sweep_time_k: float
-    min_sweep_time_s: float
-    max_sweep_time_s: float
-    transfer_bytes_per_s: float
-    command_overhead_s: float
-    max_attenuation_db: float
-    damage_level_dbm: float
-    detectors: dict
-    settings: dict
-    commands: dict
-    warning_codes: tuple = ()
-
-    def estimate_sweep_time_s(self, span_hz: float, rbw_hz: float) -> float:
-        """Swept-analyzer minimum sweep time ST = k*span/RBW^2, floored (reference sheet §8)."""
-        return max(self.sweep_time_k * span_hz / rbw_hz**2, self.min_sweep_time_s)
-
-
-def load_analyzer_profile(name_or_path: str | Path, *, base_dir: Path | None = None) -> AnalyzerProfile:
-    """Load and validate an analyzer profile (built-in name or path)."""
-    from bench.tomlsource import validation_to_config_error
-
-    source = load_profile_source(name_or_path, base_dir=base_dir)
-    data, origin = source.data, source.file
-    if data.get("kind") != "analyzer":
-        raise source.error(("kind",), f"expected kind = \"analyzer\" (an analyzer profile), found {data.get('kind')!r}")
-    try:
-        model = _ProfileModel.model_validate(data)
-    except ValidationError as exc:
-        raise validation_to_config_error(source, exc, _ProfileModel) from None
-    if model.schema_ != 1:
-        raise ConfigError(f"expected schema = 1, found {model.schema_}", file=origin, key="schema")
-    if model.kind != "analyzer":
-        raise ConfigError(f"expected kind = \"analyzer\", found {model.kind!r}", file=origin, key="kind")
-    for key in _SETTING_KEYS:
-        if key not in model.settings:
-            raise ConfigError(f"missing setting row [settings.{key}]", file=origin, key=f"settings.{key}")
-    for key in _COMMAND_KEYS:
-        if key not in model.commands:
-            raise ConfigError(f"missing command {key!r}", file=origin, key=f"commands.{key}")
-    for det in DETECTORS:
-        if det not in model.detectors:
-            raise ConfigError(f"missing detector name for {det!r}", file=origin, key=f"detectors.{det}")
-    caps = model.capabilities
-
-    def q(text: str, dim: str, key: str) -> float:
-        try:
-            return units.parse(text, dim)
-        except ConfigError as exc:
-            raise ConfigError(exc.message, file=origin, key=key) from None
-
-    io = TransportSettings(
-        timeout_s=q(model.io.timeout, "time", "io.timeout"),
-        open_timeout_s=q(model.io.open_timeout, "time", "io.open_timeout"),
-        read_termination=model.io.read_termination,
-        write_termination=model.io.write_termination,
-    )
-    return AnalyzerProfile(
-        name=model.name, origin=origin, description=model.description, io=io,
-        big_endian=model.io.byte_order == "big",
-        max_points=caps.max_points, min_points=caps.min_points,
-        freq_min_hz=q(caps.freq_min, "frequency", "capabilities.freq_min"),
-        freq_max_hz=q(caps.freq_max, "frequency", "capabilities.freq_max"),
-        rbw_min_hz=q(caps.rbw_min, "frequency", "capabilities.rbw_min"),
-        rbw_max_hz=q(caps.rbw_max, "frequency", "capabilities.rbw_max"),
-        sweep_time_k=caps.sweep_time_k,
-        min_sweep_time_s=q(caps.min_sweep_time, "time", "capabilities.min_sweep_time"),
-        max_sweep_time_s=q(caps.max_sweep_time, "time", "capabilities.max_sweep_time"),
-        transfer_bytes_per_s=q(caps.transfer_rate, "data_rate", "capabilities.transfer_rate"),
-        command_overhead_s=q(caps.command_overhead, "time", "capabilities.command_overhead"),
-        max_attenuation_db=q(caps.max_attenuation, "db", "capabilities.max_attenuation"),
-        damage_level_dbm=q(caps.damage_level, "dbm", "capabilities.damage_level"),
-        detectors=dict(model.detectors),
-        settings={k: (v.set, v.query) for k, v in model.settings.items()},
-        commands=dict(model.commands),
-        warning_codes=tuple(model.warning_codes),
-    )
+#: Largest magnitude a trace level (dBm or dBuV) can have; beyond it the bytes were misread.
+MAX_LEVEL_DB = 1000.0
+_TINY = 1e-30  # a level this close to zero but not zero: bytes read in the wrong order
 
 
 @dataclass(frozen=True)
@@ -241,18 +99,24 @@ class Analyzer:
         Open connection (see :func:`bench.transports.open_transport`). The constructor does no I/O.
     profile : AnalyzerProfile
         Command dialect and limits.
+    sleep : callable, optional
+        ``sleep(seconds)`` between status polls and for a ``fixed-wait`` (default
+        :func:`time.sleep`; the simulated bench passes one that does not wait).
     """
 
-    def __init__(self, transport, profile: AnalyzerProfile) -> None:
+    def __init__(self, transport, profile: AnalyzerProfile, *,
+                 sleep: Callable[[float], None] = time.sleep) -> None:
         self.transport = transport
         self.profile = profile
         self.identity: str | None = None
         self._applied: dict[str, object] = {}
         self._sweep_time_s: float | None = None
+        self._sleep = sleep
         self.warnings: list[str] = []
 
     @property
     def address(self) -> str:
+        """The instrument's address."""
         return self.transport.address
 
     # ------------------------------------------------------------------ verbs
@@ -262,15 +126,17 @@ class Analyzer:
         return self.identity
 
     def initialize(self) -> str:
-        """Reset to a known state: clear status, single sweep, binary format, byte order, dBm.
+        """Reset to a known state: clear status, identify, the profile's connect commands, single
+        sweep, trace format, byte order (binary formats), dBm.
 
         Also used to resynchronise after a reconnect (the instrument may have rebooted).
         """
-        c = self.profile.commands
+        c, trace = self.profile.commands, self.profile.trace
         self.transport.write(c["clear_status"])
         ident = self.identify()
-        order = c["byte_order_big"] if self.profile.big_endian else c["byte_order_little"]
-        for cmd in (c["single_sweep_mode"], c["trace_format"], order, c["power_unit"]):
+        order = [trace.byte_order_command] if trace.binary and trace.byte_order_command else []
+        for cmd in (*self.profile.connect_commands, c["single_sweep_mode"], trace.command, *order,
+                    c["power_unit"]):
             self.transport.write(cmd)
         self.check_errors("initialization")
         self._applied.clear()
@@ -339,21 +205,103 @@ class Analyzer:
         return self._sweep_time_s
 
     def sweep(self) -> None:
-        """Take one single sweep and wait for it with ``*OPC?`` (deadline: sweep time + timeout)."""
-        expected = self._sweep_time_s or 0.0
-        reply = self.transport.query(self.profile.commands["sweep_and_wait"],
-                                     timeout_s=expected * 2.0 + self.profile.io.timeout_s)
-        if reply.strip() != "1":
-            raise InstrumentError(self.address, self.profile.commands["sweep_and_wait"],
-                                  text=f"expected '1' from *OPC?, found {reply!r}")
-        # an overload or a hardware fault shows in the error queue: never store such a trace silently
+        """Take one single sweep and wait for its end as the profile's ``[completion]`` says.
+
+        Then read the error queue: an overload or a hardware fault must never pass silently.
+        """
+        completion = self.profile.completion
+        expected_s = self._sweep_time_s or 0.0
+        _AWAIT[completion.method](self, completion, expected_s)
         self.check_errors("sweep")
 
+    def _await_opc_query(self, c: Completion, expected_s: float) -> None:
+        reply = self.transport.query(c.start, timeout_s=c.deadline_s(expected_s, self.profile.io.timeout_s))
+        if reply.strip() != c.reply:
+            raise InstrumentError(self.address, c.start,
+                                  text=f"expected {c.reply!r} when the sweep is done, found {reply!r}")
+
+    def _await_status_poll(self, c: Completion, expected_s: float) -> None:
+        self.transport.write(c.start)
+        polls = c.max_polls(expected_s, self.profile.io.timeout_s)
+        for n in range(1, polls + 1):
+            if c.done(self._status(c.poll)):
+                return
+            if n < polls:
+                self._sleep(c.poll_interval_s)
+        raise ReplyTimeoutError(f"{self.address}: sweep not done after {polls} polls of {c.poll!r} "
+                                f"every {c.poll_interval_s:g} s "
+                                f"({c.deadline_s(expected_s, self.profile.io.timeout_s):g} s)")
+
+    def _await_fixed_wait(self, c: Completion, expected_s: float) -> None:
+        self.transport.write(c.start)
+        self._sleep(c.wait_s(expected_s))
+
+    def _status(self, query: str) -> int:
+        """One status register read, as an integer (IEEE 488.2 NR1)."""
+        reply = self.transport.query(query)
+        try:
+            return int(reply.strip())
+        except ValueError:
+            raise InstrumentError(self.address, query, text=f"expected an integer status, found {reply!r}") from None
+
     def fetch_trace(self, points: int) -> np.ndarray:
-        """Read the last sweep as little-endian float32 dBm values."""
-        cmd = self.profile.commands["fetch_trace"]
-        payload = self.transport.query_block(cmd)
-        return decode_float32(payload, big_endian=self.profile.big_endian, expected_points=points)
+        """Read the last sweep as little-endian float32 levels, dBm (the unit set at initialization).
+
+        Raises
+        ------
+        ProfileMismatchError
+            The reply contradicts the profile's ``trace.use`` or ``trace.byte_order``.
+        BlockFormatError, ReplyFormatError
+            The reply is malformed, or holds another number of points.
+        """
+        trace = self.profile.trace
+        reply = self.transport.query_response(trace.fetch)
+        try:
+            values = self._decode(trace, reply, points)
+        except ReplyFormatError as exc:
+            raise type(exc)(f"{self.address}: reply to {trace.fetch!r}: {exc}") from exc
+        if values.size != points:
+            raise BlockFormatError(f"{self.address}: expected {points} trace points, found {values.size}")
+        self._check_levels(trace, reply.data, values)
+        return values.astype("<f4")
+
+    def _decode(self, trace: TraceFormat, reply, points: int) -> np.ndarray:
+        if not trace.binary:
+            if reply.is_block:
+                raise self.profile.mismatch(("trace", "use"), (
+                    f"{self.address} answered {trace.fetch!r} with an IEEE 488.2 block of {len(reply.data)} bytes; "
+                    "trace.use = 'ascii' expects comma-separated numbers"))
+            return decode_ascii(reply.data, separator=trace.separator)
+        if not reply.is_block:
+            raise self.profile.mismatch(("trace", "use"), (
+                f"{self.address} answered {trace.fetch!r} with text {reply.data[:24]!r}; "
+                f"trace.use = {trace.kind!r} expects an IEEE 488.2 block"))
+        self._check_width(trace, len(reply.data), points)
+        return decode_binary(reply.data, trace.kind, big_endian=trace.big_endian) * trace.scale
+
+    def _check_width(self, trace: TraceFormat, n_bytes: int, points: int) -> None:
+        """8-byte values where 4 were declared (or the reverse) is the profile's mistake."""
+        width = BINARY_WIDTHS[trace.kind]
+        sent = n_bytes // points if points and n_bytes % points == 0 else None
+        if sent is not None and sent != width and sent in BINARY_WIDTHS.values():
+            raise self.profile.mismatch(("trace", "use"), (
+                f"{self.address} sent {n_bytes} bytes for {points} points of {trace.fetch!r}: {sent} bytes per "
+                f"point, but trace.use = {trace.kind!r} has {width}-byte values"))
+
+    def _check_levels(self, trace: TraceFormat, payload: bytes, values: np.ndarray) -> None:
+        """Refuse NaN, Inf and levels no analyzer reads; name the byte order when it is the cause."""
+        if _plausible(values):
+            return
+        if trace.binary:
+            other = decode_binary(payload, trace.kind, big_endian=not trace.big_endian) * trace.scale
+            if _plausible(other):
+                declared, actual = ("big", "little") if trace.big_endian else ("little", "big")
+                raise self.profile.mismatch(("trace", "byte_order"), (
+                    f"{self.address} sends {actual}-endian {trace.kind} values: read {declared}-endian the "
+                    f"trace holds impossible levels, read {actual}-endian it does not "
+                    f"(check trace.byte_order and trace.byte_order_{declared})"))
+        raise BlockFormatError(f"{self.address}: trace holds non-finite or impossible levels (NaN, Inf or beyond "
+                               f"+-{MAX_LEVEL_DB:g} dB): wrong format or corrupt data")
 
     def check_errors(self, context: str, max_reads: int = 32) -> None:
         """Drain ``SYST:ERR?``; raise the first error with the instrument's code and text.
@@ -387,6 +335,19 @@ class Analyzer:
         """Forget what was applied (after a reconnect everything is sent again)."""
         self._applied.clear()
         self._sweep_time_s = None
+
+
+_AWAIT = {
+    "opc-query": Analyzer._await_opc_query,
+    "status-poll": Analyzer._await_status_poll,
+    "fixed-wait": Analyzer._await_fixed_wait,
+}
+
+
+def _plausible(values: np.ndarray) -> bool:
+    """True when every value can be a level in dB: finite, within +-MAX_LEVEL_DB, not denormal."""
+    magnitude = np.abs(values)
+    return bool(np.all(np.isfinite(values) & (magnitude <= MAX_LEVEL_DB) & ((magnitude == 0) | (magnitude > _TINY))))
 
 
 def _parse_error(reply: str) -> tuple[int, str]:

@@ -1,6 +1,6 @@
 """Generic SCPI analyzer driver: the exact bytes each setting sends (recording transport).
 
-Expected spellings are the SCPI-1999 / IEEE 488.2 forms listed in the reference sheet §9.
+Expected spellings are the SCPI-1999 (Vol. 2 command reference) and IEEE 488.2 common-command forms.
 """
 
 
@@ -64,7 +64,7 @@ def test_each_setting_row_sends_exact_bytes(profile):
     s = SweepSettings(start_hz=30e6, stop_hz=1e9, rbw_hz=120e3, vbw_hz=300e3, points=10001,
                       detector="peak", ref_level_dbm=-10.5, attenuation_db=10)
     assert an.configure(s) == pytest.approx(0.125)
-    # SCPI-1999 SENSe short forms, values in plain Hz (no suffix multipliers: reference sheet §9)
+    # SCPI-1999 SENSe short forms, values in plain Hz (no suffix multipliers: SCPI 'M' means milli)
     assert tr.sent == [
         "FREQ:STOP 1000000000", "FREQ:STAR 30000000", "BAND 120000", "BAND:VID 300000",
         "SWE:POIN 10001", "DET POS", "DISP:WIND:TRAC:Y:RLEV -10.5", "INP:ATT 10",
@@ -115,7 +115,7 @@ def test_limits_refused_before_sending(profile):
 def test_fetch_decodes_both_byte_orders(profile, big):
     import dataclasses
 
-    prof = dataclasses.replace(profile, big_endian=big)
+    prof = dataclasses.replace(profile, trace=dataclasses.replace(profile.trace, big_endian=big))
     ramp = np.linspace(-100, -20, 101, dtype=np.float32)
     an, tr, _ = make(prof, trace=ramp, big_endian=big)
     an.sweep()
@@ -131,9 +131,9 @@ def test_wrong_point_count_is_an_error(profile):
 
 
 def test_sweep_time_estimate(profile):
-    # reference sheet §8: k = 2.5, 30-1000 MHz @ 120 kHz -> 0.168 s
+    # ST = k*span/RBW^2 with k = 2.5 (common practice): 30-1000 MHz @ 120 kHz -> 0.168 s
     assert profile.estimate_sweep_time_s(970e6, 120e3) == pytest.approx(0.168, abs=0.001)
-    # 0.15-30 MHz @ 9 kHz -> 0.93 s (reference sheet §8)
+    # 0.15-30 MHz @ 9 kHz -> 0.92 s (same formula)
     assert profile.estimate_sweep_time_s(29.85e6, 9e3) == pytest.approx(0.92, abs=0.01)
 
 

@@ -43,7 +43,8 @@ GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "units": (("bench.units",), ("errors",)),
     "physics": (("bench.physics",), ("units", "errors")),
     "stagelimits": (("bench.stagelimits",), ("errors",)),
-    "protocol": (("bench.ieee488", "bench.transports", "bench.transport.*"), LEAVES),
+    "protocol": (("bench.ieee488", "bench.wire", "bench.visawire", "bench.serialwire", "bench.framing",
+                  "bench.transports"), LEAVES),
     "files": (("bench.tomlsource", "bench.benchfile", "bench.provenance"), LEAVES),
     "drivers": (("bench.drivers.*",), ("protocol", "files", *LEAVES)),
     "analysis": (("bench.analysis.*",), ("files", *LEAVES)),
@@ -443,11 +444,29 @@ def test_error_tree_public_names():
     assert set(errors.__all__) == {
         "AnalysisError", "BenchError", "BlockFormatError", "ConfigError", "InstrumentError", "PlanError",
         "ReplyTimeoutError", "SafetyLimitError", "StoreError", "TransportError", "UnitError",
-        "RunInterrupted", "OperatorStop",
+        "RunInterrupted", "OperatorStop", "ProfileMismatchError", "ReplyFormatError",
     }
     for name in errors.__all__:
         assert issubclass(getattr(errors, name), errors.BenchError)
     assert errors.ConfigError.exit_code == 2
+
+
+def test_one_line_server_serves_every_simulated_dialect():
+    # G-code, the positioner line protocol and SCPI are all served by bench/sim/lineserver.py:
+    # no other simulator module opens sockets, servers or pseudo-terminals of its own
+    owners = set()
+    for name, path in project_modules().items():
+        if not name.startswith("bench.sim."):
+            continue
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        for node in ast.walk(tree):
+            names = [a.name for a in node.names] if isinstance(node, ast.Import) else (
+                [node.module] if isinstance(node, ast.ImportFrom) and node.module else [])
+            if any(n in ("socket", "socketserver", "pty", "tty", "select") for n in names):
+                owners.add(name)
+    assert owners == {"bench.sim.lineserver"}
+
+
 
 
 if __name__ == "__main__":

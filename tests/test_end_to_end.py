@@ -33,10 +33,12 @@ def sim():
     bench.stop()
 
 
-def _analyzer(sim, **profile_changes):
-    profile = dataclasses.replace(load_analyzer_profile("scpi-analyzer"), **profile_changes)
+def _analyzer(sim, big_endian=False):
+    profile = load_analyzer_profile("scpi-analyzer")
+    order = "FORM:BORD NORM" if big_endian else "FORM:BORD SWAP"  # NORMal = big-endian (SCPI FORMat:BORDer)
+    trace = dataclasses.replace(profile.trace, big_endian=big_endian, byte_order_command=order)
     tr = open_transport(sim.addresses["analyzer"], TransportSettings(timeout_s=5.0))
-    return Analyzer(tr, profile)
+    return Analyzer(tr, dataclasses.replace(profile, trace=trace))
 
 
 @pytest.mark.parametrize("big_endian", [False, True])

@@ -19,7 +19,7 @@ from bench.sim.scpi import (
 )
 from bench.sim.state import Line, SimState
 
-DBUV_MINUS_DBM = 106.99  # 50 ohm: dBuV = dBm + 106.99 (reference sheet §4)
+DBUV_MINUS_DBM = 106.99  # 50 ohm: dBuV = dBm + 106.99 (50 ohm: 20*log10(1e6 * sqrt(50 * 1e-3)), common practice)
 
 
 class FakeWorld:
@@ -51,7 +51,7 @@ class Client:
         return self.file.readline().decode("ascii").rstrip("\n")
 
     def read_block(self) -> bytes:
-        # IEEE 488.2 definite-length block: '#', n digits count, then the length (sheet §9)
+        # IEEE 488.2 definite-length block: '#', n digits count, then the length (IEEE 488.2 §8.7.9)
         assert self.file.read(1) == b"#"
         digits = int(self.file.read(1))
         length = int(self.file.read(digits))
@@ -96,7 +96,7 @@ def _single_sweep_setup(client: Client, points: int = 1001) -> None:
 
 def test_identity_has_the_four_488_2_fields(bench):
     _, client, _, server = bench
-    # *IDN? -> manufacturer,model,serial,firmware (IEEE 488.2, reference sheet §9)
+    # *IDN? -> manufacturer,model,serial,firmware (IEEE 488.2 *IDN? response, from memory)
     assert client.query("*IDN?").split(",") == ["EmissionBench", "SimAnalyzer-1", "SN0001", "0.1"]
     assert server.resource == f"TCPIP::127.0.0.1::{server.port}::SOCKET"
     client.sock.sendall(b"*OPC?\r\n")  # CR LF accepted as a line end too
@@ -118,7 +118,7 @@ def test_short_long_and_mixed_case_forms_and_optional_nodes(bench):
     assert client.query("BANDwidth:RESolution?;:BAND:RES:AUTO?") == "9000;0"
     client.write("POW:RF:ATT 20")
     assert client.query("INP:ATT?;:POW:ATT:AUTO?") == "20;0"
-    # a keyword is its short or long form, nothing in between (SCPI program syntax, sheet §9)
+    # a keyword is its short or long form, nothing in between (SCPI-1999 Vol. 1 program headers)
     client.write("FREQU:STAR 1 MHZ")
     assert client.errors() == ['-113,"Undefined header;FREQU:STAR"']
 
@@ -151,7 +151,7 @@ def test_error_queue_codes_fifo_order_and_status(bench):
     client.write("FREQ:STAR 1 MS")         # -131 Invalid suffix
     client.write("FREQ:STAR $1")           # -104 Data type error
     client.write("FREQ;STAR 1")            # -113: FREQ alone is no command
-    # SCPI-1999 standard error numbers, FIFO (reference sheet §9)
+    # SCPI-1999 standard error numbers, FIFO (SCPI-1999 Vol. 2 SYSTem:ERRor)
     codes = [int(e.split(",")[0]) for e in client.errors()]
     assert codes == [-222, -224, -109, -113, -131, -104, -113]
     assert client.query("SYST:ERR?") == '0,"No error"'
@@ -201,7 +201,7 @@ def test_init_advances_the_clock_by_the_sweep_time(bench):
     _, client, clock, _ = bench
     _single_sweep_setup(client)
     sweep_time_s = float(client.query("SWE:TIME?"))
-    assert sweep_time_s == pytest.approx(2.5 * 40e6 / 100e3**2)  # k*span/RBW^2, sheet §8
+    assert sweep_time_s == pytest.approx(2.5 * 40e6 / 100e3**2)  # k*span/RBW^2, k = 2.5 (common practice)
     before = clock.now_s()
     assert client.query("INIT:IMM;*OPC?") == "1"
     assert clock.now_s() - before == pytest.approx(sweep_time_s)
@@ -217,8 +217,8 @@ def test_binary_block_in_both_byte_orders_matches_ascii(bench):
     client.write("FORM:BORD SWAP;:TRAC? TRACE1")
     swapped = client.read_block()
     assert len(normal) == len(swapped) == 4 * 1001
-    big = np.array(struct.unpack(">1001f", normal))      # NORMal = big-endian (sheet §9)
-    little = np.frombuffer(swapped, dtype="<f4")          # SWAPped = little-endian (sheet §9)
+    big = np.array(struct.unpack(">1001f", normal))      # NORMal = big-endian (SCPI-1999 FORMat:BORDer)
+    little = np.frombuffer(swapped, dtype="<f4")          # SWAPped = little-endian (SCPI-1999 FORMat:BORDer)
     np.testing.assert_array_equal(big, little)
     np.testing.assert_allclose(big, ascii_values, atol=1e-4)
     assert ascii_values.size == 1001
@@ -333,14 +333,15 @@ def _closed(client: Client, line: str = "*IDN?") -> bool:
 
 
 def _refused(port: int) -> bool:
-    """True when the server resets a new connection, seen at connect or at the first query.
+    """True when the server resets a new connection instead of serving it.
 
-    The reset can reach the client while ``connect`` is still waiting (a loaded machine), or
-    after it returned: both are the same refusal.
+    The server accepts and resets at once, so the reset can reach the client while its
+    ``connect()`` is still returning: a ``ConnectionResetError`` from connecting counts as a
+    refusal too, as does one from the first exchange.
     """
     try:
         client = Client(port)
-    except ConnectionResetError:
+    except (ConnectionResetError, ConnectionRefusedError):
         return True
     try:
         return _closed(client)
@@ -412,3 +413,77 @@ def test_two_connections_share_one_instrument(bench):
     assert client.query("FREQ:STAR 77 MHZ;*OPC?") == "1"
     assert other.query("FREQ:STAR?") == "77000000"
     other.close()
+
+
+# ---------------------------------------------------------------- trace formats and completion
+
+
+def test_every_trace_format_and_byte_order_carries_the_same_trace(bench):
+    _, client, _, _ = bench
+    _single_sweep_setup(client)
+    assert client.query("INIT;*OPC?") == "1"
+    reference = np.array([float(v) for v in client.query("FORM ASC;:TRAC? TRACE1").split(",")])
+    decoded = {}
+    # FORMat[:DATA] and FORMat:BORDer (SCPI-1999 Vol. 2): NORMal = big-endian, SWAPped = little
+    for fmt, dtype in (("REAL,32", "f4"), ("REAL,64", "f8"), ("INT,32", "i4")):
+        for order, prefix in (("NORM", ">"), ("SWAP", "<")):
+            client.write(f"FORM:DATA {fmt};:FORM:BORD {order};:TRAC:DATA? TRACE1")
+            values = np.frombuffer(client.read_block(), prefix + dtype).astype(float)
+            decoded[fmt, order] = values / 1000.0 if fmt == "INT,32" else values  # INT,32: 1/1000 dB
+    for (fmt, order), values in decoded.items():
+        assert values.size == 1001, (fmt, order)
+        np.testing.assert_allclose(values, reference, atol=1e-3, err_msg=f"{fmt} {order}")
+    assert client.query("FORM?") == "INT,32" and client.query("FORM:BORD?") == "SWAP"
+    client.write("FORM INT,16")
+    assert client.errors() == ["-224,\"Illegal parameter value;expected ASCii, REAL,32, REAL,64 or "
+                               "INTeger,32, found 'INT,16'\""]
+
+
+def _long_sweep_setup(client: Client) -> float:
+    # 30 MHz-1 GHz at 30 kHz RBW: ST = 2.5 * 970e6 / 30e3**2 = 2.69 s (k*span/RBW^2, common practice)
+    assert client.query("*RST;:INIT:CONT OFF;:FREQ:STAR 30 MHZ;STOP 1 GHZ;:BAND 30 KHZ;*OPC?") == "1"
+    return float(client.query("SWE:TIME?"))
+
+
+def test_the_sweeping_bit_of_the_operation_status_clears_when_the_sweep_ends(bench):
+    analyzer, client, clock, _ = bench
+    sweep_time_s = _long_sweep_setup(client)
+    before = clock.now_s()
+    client.write("INIT")
+    polls = [client.query("STAT:OPER:COND?") for _ in range(60)]
+    # SWEeping is bit 3 (value 8) of the SCPI operation status register; one poll stands for
+    # POLL_QUANTUM_S of the sweep, so the bit shows for ceil(ST / 50 ms) - 1 polls
+    running = int(np.ceil(sweep_time_s / 0.05)) - 1
+    assert polls == ["8"] * running + ["0"] * (60 - running)
+    assert clock.now_s() - before == pytest.approx(sweep_time_s)  # the polls add no time
+    assert analyzer.sweep_count == 1
+
+
+def test_opc_then_esr_polling_sets_operation_complete_when_the_sweep_ends(bench):
+    _, client, _, _ = bench
+    sweep_time_s = _long_sweep_setup(client)
+    client.write("INIT;*OPC")
+    polls = [client.query("*ESR?") for _ in range(60)]
+    # IEEE 488.2 §11.5.1 (from memory): ESR bit 0 (OPC) is set once the pending operation completes; *ESR? clears it
+    done = polls.index("1")
+    assert done == int(np.ceil(sweep_time_s / 0.05)) - 1
+    assert set(polls[:done]) == {"0"} and set(polls[done + 1:]) == {"0"}
+
+
+def test_a_query_that_needs_the_sweep_ends_it(bench):
+    _, client, _, _ = bench
+    _long_sweep_setup(client)
+    client.write("FORM REAL,32;:INIT;*OPC")
+    client.write("TRAC? TRACE1")
+    assert len(client.read_block()) == 4 * 1001   # the trace query waits for the sweep
+    assert client.query("STAT:OPER:COND?;*ESR?") == "0;1"
+    client.write("INIT;*OPC;*CLS")                  # *CLS forgets the pending *OPC
+    assert client.query("*OPC?;*ESR?") == "1;0"
+
+
+def test_mode_selection_and_display_switch(bench):
+    _, client, _, _ = bench
+    client.write("INSTrument:SELect SANalyzer;:DISPlay:ENABle OFF")
+    assert client.query("INST?;:DISP:ENAB?") == "SAN;0"
+    client.write("INST:SEL RECEIVER")
+    assert client.errors() == ["-224,\"Illegal parameter value;expected SANalyzer, found 'RECEIVER'\""]

@@ -35,9 +35,10 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="verb", required=True, metavar="VERB")
 
     def bench_args(sp):
-        g = sp.add_mutually_exclusive_group()
-        g.add_argument("--bench", type=Path, help="bench file (instruments, addresses, tables, site)")
-        g.add_argument("--sim", action="store_true", help="use the built-in simulated bench over loopback")
+        sp.add_argument("--bench", type=Path, help="bench file (instruments, addresses, tables, site)")
+        sp.add_argument("--sim", action="store_true",
+                        help="use the simulated bench over loopback: the demo bench, or with --bench that "
+                             "bench file with its instruments simulated (socket:// addresses stay socket://)")
         sp.add_argument("--board", type=Path, help="with --sim: simulated board file (default: the demo board)")
         sp.add_argument("--seed", type=_seed, default=None, help="with --sim: random seed >= 0 (default 1)")
         sp.add_argument("--realtime", action="store_true", help="with --sim: sweeps and moves take their physical time")

@@ -120,7 +120,8 @@ def cmd_resume(args) -> int:
 
 def _announce(addresses: dict) -> None:
     for role in ("analyzer", "stage", "stage_pty", "mast", "turntable", "supply"):
-        print(f"{role.replace('_', '-'):10s} {addresses[role]}", flush=True)
+        also = f"  (or {addresses[role + '_socket']})" if role + "_socket" in addresses else ""
+        print(f"{role.replace('_', '-'):10s} {addresses[role]}{also}", flush=True)
     print("simulated bench running; Ctrl-C stops it", flush=True)
 
 

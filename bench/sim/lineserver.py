@@ -1,8 +1,19 @@
 """Serving a line-oriented simulated device on loopback TCP and on a pseudo-terminal.
 
-A *line engine* is any object with ``banner_lines() -> list[str]``, ``count_bytes(n)`` and
-``handle(line, emit)``; :class:`LineEngine` gives the first two and the "silent controller" fault
-gate. The simulated stage (G-code) and the simulated mast and turntable are line engines.
+One helper serves every line dialect of the simulated bench: the stage's G-code, the mast and
+turntable's line protocol and the analyzer's and supply's SCPI all go through
+:class:`TcpLineServer` and :class:`PtyLineServer`.
+
+A *line engine* has ``open_session()``, called once per connection (it may raise
+:class:`RefuseConnection`; a shared device returns itself), and the session it returns has
+``banner_lines() -> list[str]``, ``count_bytes(n)`` and ``handle(line, emit)``. ``emit`` sends a
+text line (``str``, the server adds ``\\n``) or raw bytes (``bytes``, sent as they are: an SCPI
+reply with its own terminator, perhaps an IEEE 488.2 block). ``handle`` may raise
+:class:`DropConnection` (the server resets the connection) or :class:`HangConnection` (the
+server stops answering on it). :class:`LineEngine` gives ``open_session``, ``banner_lines``,
+``count_bytes`` and the "silent controller" fault gate to the stage and the positioners.
+
+Lines end at LF or CR; empty lines are ignored and surrounding blanks stripped.
 """
 
 from __future__ import annotations
@@ -17,7 +28,20 @@ import threading
 import time
 import tty
 
-__all__ = ["LineEngine", "TcpLineServer", "PtyLineServer"]
+__all__ = ["DropConnection", "HangConnection", "LineEngine", "PtyLineServer", "RefuseConnection",
+           "TcpLineServer"]
+
+
+class DropConnection(Exception):
+    """Raised by a session's ``handle`` to make the server reset the connection without a reply."""
+
+
+class HangConnection(Exception):
+    """Raised by a session's ``handle`` to make the server stop answering on this connection."""
+
+
+class RefuseConnection(Exception):
+    """Raised by ``open_session`` to make the server reset a new connection at once."""
 
 
 class LineEngine:
@@ -26,6 +50,10 @@ class LineEngine:
     Subclasses set ``banner`` (str or None), ``received`` (list of lines), ``bytes_received``,
     ``faults`` (with ``silent_after_commands``) and ``_lock``.
     """
+
+    def open_session(self) -> LineEngine:
+        """The session serving one connection: the device itself, shared by every client."""
+        return self
 
     def banner_lines(self) -> list[str]:
         """Lines sent when a client connects."""
@@ -63,41 +91,71 @@ def _split_lines(buffer: bytearray) -> list[str]:
 class _Handler(socketserver.BaseRequestHandler):
     def handle(self) -> None:
         server: _TcpServer = self.server  # type: ignore[assignment]
-        engine = server.engine
         conn: socket.socket = self.request
-        # reply lines go out as separate small writes ("BUSY 1", then "ok"): without this,
-        # Nagle's algorithm holds the second one until the client's delayed ACK (~40 ms)
-        conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
         server.track(conn, True)
-
-        def emit(text: str) -> None:
-            conn.sendall((text + "\n").encode("ascii"))
-
-        buffer = bytearray()
         try:
-            # Boot time before the banner: pyserial's socket:// drains the input once right
-            # after connecting, which would eat a banner sent at once; a board that resets when
-            # the port opens also prints its banner only after booting (reference sheet §10).
-            time.sleep(server.boot_delay_s)
-            for line in engine.banner_lines():
-                emit(line)
-            while True:
-                chunk = conn.recv(4096)
-                if not chunk:
-                    return
-                engine.count_bytes(len(chunk))
-                buffer.extend(chunk)
-                for line in _split_lines(buffer):
-                    engine.handle(line, emit)
+            try:
+                session = server.engine.open_session()
+            except RefuseConnection:
+                _reset(conn)
+                return
+            # reply lines go out as separate small writes ("BUSY 1", then "ok"): without this,
+            # Nagle's algorithm holds the second one until the client's delayed ACK (~40 ms)
+            conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            self._serve(session, conn, server.boot_delay_s)
         except OSError:
             return  # the client went away
         finally:
             server.track(conn, False)
 
+    @staticmethod
+    def _serve(session, conn: socket.socket, boot_delay_s: float) -> None:
+        emit = _emitter(conn.sendall)
+        # Boot time before the banner: pyserial's socket:// drains the input once right
+        # after connecting, which would eat a banner sent at once; a board that resets when
+        # the port opens also prints its banner only after booting (common practice).
+        time.sleep(boot_delay_s)
+        for line in session.banner_lines():
+            emit(line)
+        buffer = bytearray()
+        while True:
+            chunk = conn.recv(4096)
+            if not chunk:
+                return
+            session.count_bytes(len(chunk))
+            buffer.extend(chunk)
+            for line in _split_lines(buffer):
+                try:
+                    session.handle(line, emit)
+                except DropConnection:
+                    _reset(conn)
+                    return
+                except HangConnection:
+                    while conn.recv(4096):
+                        pass  # read and ignore until the client closes
+                    return
+
+
+def _emitter(send):
+    """``emit(str | bytes)``: a text line gets ``\\n`` appended, bytes go out as they are."""
+    def emit(reply: str | bytes) -> None:
+        send(reply if isinstance(reply, bytes) else (reply + "\n").encode("ascii"))
+    return emit
+
+
+def _reset(conn: socket.socket) -> None:
+    """Close with RST (linger 0), as an instrument that dropped off the network would look."""
+    try:
+        conn.setsockopt(socket.SOL_SOCKET, socket.SO_LINGER, struct.pack("ii", 1, 0))
+    except OSError:
+        pass
+    conn.close()
+
 
 class _TcpServer(socketserver.ThreadingTCPServer):
     daemon_threads = True
     allow_reuse_address = True
+    block_on_close = False
 
     def __init__(self, address, engine, boot_delay_s: float) -> None:
         self.engine = engine
@@ -120,12 +178,12 @@ class _TcpServer(socketserver.ThreadingTCPServer):
 
 
 class TcpLineServer:
-    """Serve a line device (anything with ``banner_lines``, ``handle``, ``count_bytes``) on TCP.
+    """Serve a line engine on TCP: one session per connection (see the module docstring).
 
     Parameters
     ----------
     engine : object
-        The simulated device.
+        The simulated device (``open_session()``).
     host : str
         Loopback address to bind.
     port : int
@@ -166,17 +224,28 @@ class TcpLineServer:
         self._thread.join()
         self._server = None
 
+    def __enter__(self) -> TcpLineServer:
+        self.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
 
 class PtyLineServer:
     """Serve a line device on a pseudo-terminal; clients open :attr:`path` as a serial port.
 
     The master side runs in packet mode (``TIOCPKT``) so the server learns when the client
-    flushes its input queue, which pyserial does on open; the banner is then sent again.
+    flushes its input queue, which pyserial does on open; the banner is then sent again. One
+    session serves the port. After :class:`DropConnection` or :class:`HangConnection` (a line
+    cannot be reset) the device stays silent until the client opens the port again.
     """
 
     def __init__(self, engine) -> None:
         self.engine = engine
         self.path: str | None = None
+        self._session = None
+        self._silent = False
         self._master = self._slave = -1
         self._stop_r = self._stop_w = -1
         self._thread: threading.Thread | None = None
@@ -192,18 +261,30 @@ class PtyLineServer:
         fcntl.ioctl(self._master, termios.TIOCPKT, struct.pack("i", 1))
         self.path = os.ttyname(self._slave)
         self._stop_r, self._stop_w = os.pipe()
+        self._session = self.engine.open_session()
         self._send_banner()
         self._thread = threading.Thread(target=self._serve, name="sim-pty", daemon=True)
         self._thread.start()
         return self.path
 
-    def _emit(self, text: str) -> None:
+    def _emit(self, reply: str | bytes) -> None:
+        data = reply if isinstance(reply, bytes) else (reply + "\n").encode("ascii")
         with self._write_lock:
-            os.write(self._master, (text + "\n").encode("ascii"))
+            while data:
+                data = data[os.write(self._master, data):]
 
     def _send_banner(self) -> None:
-        for line in self.engine.banner_lines():
+        for line in self._session.banner_lines():
             self._emit(line)
+
+    def _lines(self, lines: list[str]) -> None:
+        for line in lines:
+            if self._silent:
+                return
+            try:
+                self._session.handle(line, self._emit)
+            except (DropConnection, HangConnection):
+                self._silent = True
 
     def _serve(self) -> None:
         import termios
@@ -220,12 +301,12 @@ class PtyLineServer:
             if not packet:
                 continue
             if packet[0] == termios.TIOCPKT_DATA:
-                self.engine.count_bytes(len(packet) - 1)
+                self._session.count_bytes(len(packet) - 1)
                 buffer.extend(packet[1:])
-                for line in _split_lines(buffer):
-                    self.engine.handle(line, self._emit)
+                self._lines(_split_lines(buffer))
             elif packet[0] & termios.TIOCPKT_FLUSHREAD:
                 buffer.clear()
+                self._silent = False
                 self._send_banner()  # the client opened (or cleared) the port
 
     def stop(self) -> None:
