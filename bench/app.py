@@ -388,19 +388,6 @@ def _limit_names() -> list[str] | str:
 
 
 def _transports() -> list[str]:
-    out = []
-    try:
-        import pyvisa
+    from bench.transports import describe_transports
 
-        rm = pyvisa.ResourceManager("@py")
-        out.append(f"VISA (pyvisa-py): available, backend {rm.visalib}")
-        rm.close()
-    except Exception as exc:  # noqa: BLE001 - info must report, not crash
-        out.append(f"VISA (pyvisa-py): unavailable ({exc})")
-    try:
-        import serial
-
-        out.append(f"serial (pyserial {serial.VERSION}): available (device paths, socket://, loop://)")
-    except ImportError as exc:
-        out.append(f"serial: unavailable ({exc})")
-    return out
+    return list(describe_transports())

@@ -97,7 +97,8 @@ def capabilities(bench, profiles: dict | None = None):
     ap = profiles["analyzer"]
     analyzer = AnalyzerCaps(max_points=ap.max_points, min_points=ap.min_points, sweep_time_k=ap.sweep_time_k,
                             min_sweep_time_s=ap.min_sweep_time_s, transfer_bytes_per_s=ap.transfer_bytes_per_s,
-                            command_overhead_s=ap.command_overhead_s)
+                            command_overhead_s=ap.command_overhead_s,
+                            wire_bytes_per_point=ap.trace.bytes_per_point)
     kwargs = {}
     if "stage" in profiles:
         kwargs["stage_accel_m_per_s2"] = profiles["stage"].accel_m_per_s2
@@ -163,7 +164,8 @@ def needs_of(plan, kinds) -> set[str]:
 
 
 def _open_analyzer(section, profile, options: dict):
-    device = Analyzer(open_transport(section.address, _with_timeout(profile.io, section.timeout_s)), profile)
+    device = Analyzer(open_transport(section.address, _with_timeout(profile.io, section.timeout_s)), profile,
+                      sleep=options["poll_sleep"])
     return device, device.initialize
 
 

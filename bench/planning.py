@@ -11,7 +11,8 @@ Estimates used (all stated in the plan text):
 * sweep time per segment: ``max(k * span / RBW^2, min_sweep_time)`` (``RBW * VBW`` in the
   denominator when VBW < RBW; the swept-analyzer relation, k = 2-3 for analog filters, common
   practice); ``points * dwell`` when a dwell is given;
-* transfer: ``points * 4 bytes / rate + command overhead`` per segment (REAL,32 traces);
+* transfer: ``points * bytes per point / rate + command overhead`` per segment (the bytes per
+  point of the profile's trace format: 4 for REAL,32, 8 for REAL,64, about 12 for ASCII);
 * stage moves: trapezoidal velocity profile (feed, acceleration) per axis move, and every XY
   move is lift to ``safe_z``, travel, lower;
 * mast and turntable: constant speed.
@@ -100,6 +101,7 @@ class AnalyzerCaps:
     transfer_bytes_per_s: float = 1e6
     command_overhead_s: float = 0.01
     rbw_steps_hz: tuple[float, ...] = ()
+    wire_bytes_per_point: float = BYTES_PER_POINT
 
 
 @dataclass(frozen=True)
@@ -366,7 +368,7 @@ def sweep_time_s(span_hz: float, rbw_hz: float, vbw_hz: float, caps: AnalyzerCap
 
 def transfer_time_s(points: int, caps: AnalyzerCaps) -> float:
     """Fetching one trace of float32 values plus the command round trip, s."""
-    return points * BYTES_PER_POINT / caps.transfer_bytes_per_s + caps.command_overhead_s
+    return points * caps.wire_bytes_per_point / caps.transfer_bytes_per_s + caps.command_overhead_s
 
 
 def segment_sweep(sweep, caps: AnalyzerCaps) -> tuple[Segment, ...]:

@@ -8,18 +8,13 @@ Nothing here does I/O with an instrument.
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass
 from pathlib import Path
 
 from bench.errors import BenchError, ConfigError, PlanError
 from bench.steps import kind_of
-from bench.transports import is_visa_address
 
 __all__ = ["Checks", "preflight", "resolve_limit", "step_span_hz"]
-
-_SERIAL_SCHEMES = ("socket://", "rfc2217://", "loop://", "spy://", "hwgrep://", "alt://")
-
 
 def resolve_limit(name: str, sequence_dir: Path | None) -> str:
     """A built-in limit name as is; a limit file path made absolute against the sequence's folder."""
@@ -142,7 +137,10 @@ def _check_tables(checks: Checks, step) -> None:
 
 
 def _check_addresses(bench) -> None:
-    """Every address must name a transport: a VISA resource, a pyserial URL or a device path."""
+    """Every address must name a transport of the registry (VISA resource, serial URL, device path)."""
+    from bench.errors import TransportError
+    from bench.transports import find_scheme
+
     for role in ("analyzer", "stage", "mast", "turntable", "supply"):
         section = getattr(bench, role, None)
         if section is None:
@@ -151,10 +149,10 @@ def _check_addresses(bench) -> None:
         if address.startswith("sim://"):
             raise PlanError(f"[{role}] address {address!r} is a placeholder for the simulated bench: "
                             "run with --sim, or put the instrument's real address in the bench file")
-        if not (is_visa_address(address) or address.startswith(_SERIAL_SCHEMES) or address.startswith("/")
-                or re.fullmatch(r"COM\d+", address, re.IGNORECASE)):
-            raise PlanError(f"[{role}] address: expected a VISA resource (TCPIP::host::port::SOCKET, "
-                            f"GPIB0::n::INSTR, ...), a serial device path or a socket:// URL, found {address!r}")
+        try:
+            find_scheme(address)
+        except TransportError as exc:
+            raise PlanError(f"[{role}] address: {exc}") from None
 
 
 class _NoTransport:
