@@ -27,7 +27,7 @@ def _print_banner(session, *, what: str) -> None:
     print("  cautions:")
     for text in app.cautions(session):
         print(f"   - {text}")
-    for w in dict.fromkeys(tuple(session.plan.warnings) + tuple(session.bench.warnings)):
+    for w in dict.fromkeys(session.bench.warnings):  # the plan's warnings are in its lines above
         print(f"  warning: {w}")
 
 

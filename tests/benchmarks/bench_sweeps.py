@@ -100,9 +100,9 @@ def run_child(args: list[str], cwd: Path, *, timeout_s: float = 600.0) -> ChildR
 
 
 def run_folder_from_stdout(stdout: str) -> Path:
-    """The folder named by ``run stored in ...`` / ``run completed in ...``."""
+    """The folder named by the ``run folder ...`` line that ends a run or a resume."""
     for line in stdout.splitlines()[::-1]:
-        for head in ("run stored in ", "run completed in "):
+        for head in ("run folder ",):
             if line.startswith(head):
                 return Path(line[len(head):].strip())
     raise RuntimeError(f"no run folder in the output:\n{stdout[-2000:]}")
