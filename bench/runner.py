@@ -261,7 +261,8 @@ def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Pat
     manifest = ro.manifest()
     ro.close()
     if manifest.get("state") == "complete":
-        raise ConfigError(f"{folder}: this run is already complete; nothing to resume")
+        raise ConfigError(f"{folder}: this run is already complete; nothing to resume (to write its "
+                          f"report again: emission-bench report {folder})")
     seq_path = Path(manifest["sequence"]["path"])
     if not seq_path.is_file() or _sha256(seq_path) != manifest["sequence"]["sha256"]:
         raise ConfigError(f"{seq_path}: the sequence file changed or is missing since the run started; "

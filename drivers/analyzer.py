@@ -35,13 +35,18 @@ from bench.errors import BlockFormatError, InstrumentError, PlanError, ReplyForm
 from bench.ieee488 import decode_ascii, decode_binary
 
 __all__ = ["AnalyzerProfile", "Analyzer", "SweepSettings", "load_analyzer_profile", "points_for_step",
-           "DETECTORS", "MAX_LEVEL_DB"]
+           "DETECTORS", "MAX_LEVEL_DB", "FLOOR_DBM", "DAMAGE_HEADROOM_DB"]
 
 #: Detector names used in sequence files (trade terms); profiles map them to SCPI spellings.
 DETECTORS = ("peak", "negative", "sample", "average", "rms", "quasi-peak", "cispr-average")
 
 #: Largest magnitude a trace level (dBm or dBuV) can have; beyond it the bytes were misread.
 MAX_LEVEL_DB = 1000.0
+#: Readings below this are no reading: kTB at 1 Hz is -174 dBm (derived), no analyzer sees
+#: 70 dB under that.
+FLOOR_DBM = -250.0
+#: A reading this far above the input's damage level means a destroyed input or misread data.
+DAMAGE_HEADROOM_DB = 20.0
 _TINY = 1e-30  # a level this close to zero but not zero: bytes read in the wrong order
 
 
@@ -263,7 +268,25 @@ class Analyzer:
         if values.size != points:
             raise BlockFormatError(f"{self.address}: expected {points} trace points, found {values.size}")
         self._check_levels(trace, reply.data, values)
+        self._check_range(values)
         return values.astype("<f4")
+
+    def _check_range(self, values_dbm: np.ndarray) -> None:
+        """Refuse readings no working input can show: a measurement fault, never stored as data.
+
+        Plausible readings lie between :data:`FLOOR_DBM` (far below any analyzer's noise floor at
+        its narrowest RBW) and the profile's input damage level plus :data:`DAMAGE_HEADROOM_DB`
+        (an input that reads more is destroyed or the value was misread).
+        """
+        high = self.profile.damage_level_dbm + DAMAGE_HEADROOM_DB
+        worst = float(np.max(values_dbm)) if values_dbm.size else 0.0
+        lowest = float(np.min(values_dbm)) if values_dbm.size else 0.0
+        if worst > high or lowest < FLOOR_DBM:
+            bad = worst if worst > high else lowest
+            raise BlockFormatError(f"{self.address}: trace holds {bad:.4g} dBm, outside what this input can read "
+                                   f"({FLOOR_DBM:g} dBm to {high:g} dBm: the profile's damage level "
+                                   f"{self.profile.damage_level_dbm:+g} dBm + {DAMAGE_HEADROOM_DB:g} dB): "
+                                   "a measurement fault, not stored")
 
     def _decode(self, trace: TraceFormat, reply, points: int) -> np.ndarray:
         if not trace.binary:

@@ -305,6 +305,22 @@ def test_garbage_that_no_byte_order_explains_is_a_block_format_error():
         an.fetch_trace(101)
 
 
+def test_a_finite_but_absurd_level_is_a_measurement_fault_not_data():
+    # 3e38 dBm fits a float32 but is no level at all
+    an, _, _ = rig(load_analyzer_profile("scpi-analyzer"), trace_reply=block([-80.0] * 100 + [3e38], "<f4"))
+    with pytest.raises(BlockFormatError, match="non-finite or impossible levels"):
+        an.fetch_trace(101)
+    # +200 dBm is a number, but the profile's input is destroyed above +30 dBm (typical analyzer
+    # input rating, common practice): anything over +50 dBm is a fault, never data
+    an, _, _ = rig(load_analyzer_profile("scpi-analyzer"), trace_reply=block([-80.0] * 100 + [200.0], "<f4"))
+    with pytest.raises(BlockFormatError, match=r"trace holds 200 dBm, outside what this input can read "
+                                               r"\(-250 dBm to 50 dBm"):
+        an.fetch_trace(101)
+    an, _, _ = rig(load_analyzer_profile("scpi-analyzer"), trace_reply=block([-300.0] * 101, "<f4"))
+    with pytest.raises(BlockFormatError, match="-300 dBm, outside what this input can read"):
+        an.fetch_trace(101)
+
+
 # ------------------------------------------------------------------ profile files
 
 
