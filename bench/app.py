@@ -232,11 +232,14 @@ def _resume_simulator(manifest: dict, options: BenchOptions, sim: bool, accept_c
     return board, seed
 
 
-def report(folder: Path, *, map_peaks: int = 3, map_freqs_hz: tuple = (), map_bands_hz: tuple = ()) -> Path:
+def report(folder: Path, *, map_peaks: int = 3, map_freqs_hz: tuple = (), map_bands_hz: tuple = (),
+           limit: str | None = None, margin_db: float | None = None) -> Path:
     """Write the HTML report and plots of a run folder; returns the HTML file.
 
     Near-field maps are drawn at the ``map_peaks`` strongest hot spots, at each frequency of
-    ``map_freqs_hz`` and over each (low, high) band of ``map_bands_hz`` (Hz).
+    ``map_freqs_hz`` and over each (low, high) band of ``map_bands_hz`` (Hz). With ``limit``
+    (a built-in name or a limit file) the stored data are judged again against it, with
+    ``margin_db`` if given, into ``report-<limit>.html`` beside the first report.
     """
     from bench.report import MapViews, write_report
     from bench.store import open_run
@@ -245,7 +248,12 @@ def report(folder: Path, *, map_peaks: int = 3, map_freqs_hz: tuple = (), map_ba
     run = open_run(folder)
     try:
         _check_map_views(run, views)
-        return write_report(run, views)
+        if limit is None:
+            return write_report(run, views)
+        from bench.rejudge import rejudge
+
+        return write_report(rejudge(run, limit, margin_db=margin_db), views,
+                            name=f"report-{Path(limit).stem}")
     finally:
         run.close()
 

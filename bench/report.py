@@ -79,11 +79,11 @@ class StepWriter:
         self.views = views or MapViews()
         self.label = str(info.get("label"))
         self.kind = str(info.get("kind", ""))
-        self.plots_dir = Path(run.folder) / "plots"
+        self.shared = shared if shared is not None else {"chains": {}, "drawn": set()}
+        self.plots_dir = self.shared.get("plots_dir", Path(run.folder) / "plots")
         self.warnings: list[str] = []
         self.parts: list[str] = []
         self.key_parts: list[str] = []
-        self.shared = shared if shared is not None else {"chains": {}, "drawn": set()}
         self._spectrum = None
 
     def png(self, suffix: str) -> Path:
@@ -257,7 +257,7 @@ class MapViews:
     bands_hz: tuple = ()
 
 
-def write_report(run, views: MapViews | None = None) -> Path:
+def write_report(run, views: MapViews | None = None, *, name: str = "report") -> Path:
     """Write ``report.html`` (self-contained) and the PNGs in ``plots/`` of a run folder.
 
     Parameters
@@ -266,6 +266,8 @@ def write_report(run, views: MapViews | None = None) -> Path:
         Open run folder (read-only is enough).
     views : MapViews, optional
         Extra near-field maps (default: the three strongest flagged peaks).
+    name : str
+        ``<name>.html``; pictures of a report other than ``report`` go to ``plots-<name>/``.
 
     Returns
     -------
@@ -273,16 +275,16 @@ def write_report(run, views: MapViews | None = None) -> Path:
         The HTML file.
     """
     try:
-        return _write_report(run, views)
+        return _write_report(run, views, name)
     except OSError as exc:
         raise StoreError(f"{run.folder}: cannot write the report: {exc.strerror or exc}") from None
 
 
-def _write_report(run, views: MapViews | None) -> Path:
+def _write_report(run, views: MapViews | None, name: str) -> Path:
     manifest = run.manifest()
-    plots_dir = Path(run.folder) / "plots"
+    plots_dir = Path(run.folder) / ("plots" if name == "report" else f"plots-{name}")
     plots_dir.mkdir(exist_ok=True)
-    shared = {"chains": {}, "drawn": set()}
+    shared = {"chains": {}, "drawn": set(), "plots_dir": plots_dir}
     writers = [StepWriter(run, info, views, shared) for info in manifest.get("steps", [])]
     sections = [w.render() for w in writers]
     title = _title(manifest)
@@ -290,7 +292,7 @@ def _write_report(run, views: MapViews | None) -> Path:
              f'<div class="notice">{esc(DISCLAIMER)}</div>', _key_pictures(writers), _safety(manifest),
              *sections, _chains(shared["chains"]), _run_details(manifest), _events(run),
              f'<div class="notice">{esc(DISCLAIMER)}</div>']
-    out = Path(run.folder) / "report.html"
+    out = Path(run.folder) / f"{name}.html"
     out.write_text(page(title, "".join(parts)), encoding="utf-8")
     for old in plots_dir.glob("*.png"):  # pictures an earlier report drew and this one did not
         if old.name not in shared["drawn"]:
@@ -315,6 +317,9 @@ def _subtitle(manifest: dict) -> str:
                                          " (accelerated clock: the run took seconds; the plan's times are a real "
                                          "bench's)"))
     notes = (manifest.get("eut") or {}).get("notes")
+    if manifest.get("rejudged"):
+        bits.append(f"judged again against {Path(str(manifest['rejudged']['limit'])).stem} from the stored data "
+                    "(the report of the run as measured is report.html)")
     text = f'<p class="subtitle">{esc(" · ".join(bits))}</p>'
     if manifest.get("state") != "complete":
         text += (f'<p class="warn">This run is {esc(manifest.get("state", "unknown"))}: steps after '

@@ -57,7 +57,7 @@ GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
                 "bench.executor", "bench.runner", "bench.progress"),
                ("steps", "planning", "drivers", "protocol", "store", "analysis", "files",
                 *LEAVES)),
-    "outputs": (("bench.report", "bench.compare", "bench.export"),
+    "outputs": (("bench.report", "bench.compare", "bench.export", "bench.rejudge"),
                 ("steps", "output helpers", "store", "analysis", "files", *LEAVES)),
     "sim": (("bench.sim.*",),
             ("errors", "units", "physics", "bench.tomlsource", "bench.ieee488")),

@@ -148,3 +148,19 @@ def test_info_prints_a_limit_with_its_source(capsys):
     # CISPR 32 Table A.4 (class B, 3 m): 40 dBuV/m from 30 to 230 MHz, 47 dBuV/m to 1 GHz
     assert re.search(r"30\.000 MHz to\s+230\.000 MHz\s+40\.0 dBµV/m", out)
     assert re.search(r"230\.000 MHz to\s+1000\.000 MHz\s+47\.0 dBµV/m", out)
+
+
+def test_a_stored_run_is_judged_again_against_another_limit(tmp_path, capsys):
+    folder = _far_run(tmp_path)  # judged against CISPR 32 class B at 3 m when measured
+    capsys.readouterr()
+    assert main(["report", str(folder), "--limit", "cispr32-class-a-10m", "--margin", "3 dB"]) == 0
+    path = Path(capsys.readouterr().out.strip())
+    assert path.name == "report-cispr32-class-a-10m.html" and (folder / "report.html").exists() is False
+    text = path.read_text(encoding="utf-8")
+    # the class A 10 m line (CISPR 32 Table A.2: 40 dBuV/m to 230 MHz) moved to the 3 m site
+    # at 20 dB/decade is 50.5 dBuV/m, 10.5 dB above the class B line the run was measured against
+    assert "judged again against cispr32-class-a-10m" in text and "class A" in text
+    assert "Source: CISPR 32" in text
+    stored = open_run(folder).results("prescan")
+    assert not stored.empty  # the run itself is unchanged: its rows are still judged against class B
+    assert main(["report", str(folder), "--limit", "fcc15-class-b-3m", "--margin", "two"]) == 2

@@ -83,6 +83,9 @@ def build_parser() -> argparse.ArgumentParser:
                     help='near-field map at a frequency, e.g. "48 MHz" (repeatable)')
     sp.add_argument("--map-band", action="append", nargs=2, default=[], metavar=("LOW", "HIGH"),
                     help='near-field map of the maximum over a band, e.g. "100 MHz" "200 MHz" (repeatable)')
+    sp.add_argument("--limit", metavar="NAME_OR_FILE",
+                    help="judge the stored data again against another limit set, into report-<limit>.html")
+    sp.add_argument("--margin", metavar="DB", help='with --limit: the margin for "marginal", e.g. "3 dB"')
     sp.add_argument("--map-peaks", type=int, default=3, metavar="N",
                     help="near-field maps at the N strongest flagged peaks (default 3)")
 

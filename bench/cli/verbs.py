@@ -152,8 +152,17 @@ def cmd_report(args) -> int:
     bands = tuple((freq(lo, "--map-band"), freq(hi, "--map-band")) for lo, hi in args.map_band)
     if any(lo >= hi for lo, hi in bands):
         raise ConfigError("expected LOW < HIGH", key="--map-band")
+    margin = None
+    if args.margin is not None:
+        if args.limit is None:
+            raise ConfigError("--margin is used with --limit (judging the run again)", key="--margin")
+        try:
+            margin = units.parse(args.margin, "db")
+        except ConfigError as exc:
+            raise ConfigError(exc.message, key="--margin") from None
     print(app.report(args.run, map_peaks=args.map_peaks,
-                     map_freqs_hz=tuple(freq(f, "--map-at") for f in args.map_at), map_bands_hz=bands))
+                     map_freqs_hz=tuple(freq(f, "--map-at") for f in args.map_at), map_bands_hz=bands,
+                     limit=args.limit, margin_db=margin))
     return 0
 
 

@@ -225,6 +225,11 @@ class StepKind:
         if spectrum is not None:
             writer.chain_block(spectrum)
 
+    def rejudge(self, run, info: dict, sequence, rows):
+        """Result rows of the step judged against ``info['limit']`` (the run's stored data
+        unchanged), or None to keep ``rows`` as stored. ``run`` is a read-only view."""
+        return None
+
     def compare_parts(self, run_b, run_a, label: str, out: Path, outline) -> Any:
         """What the kind adds to a before/after comparison beyond the spectra and matched results.
 

@@ -173,6 +173,24 @@ class FinalKind(StepKind):
     def report_section(self, writer) -> None:
         _report_section(writer)
 
+    def rejudge(self, run, info: dict, sequence, rows) -> list[dict]:
+        """The stored readings compared with the new limit's line of their detector."""
+        from bench.steps.prescan import stored_context
+
+        prescan = sequence.step(info["of"])
+        ctx = stored_context(run, info)
+        of = next((s for s in run.manifest().get("steps", []) if s.get("label") == info["of"]), {})
+        margin = float(of.get("margin_db", prescan.margin_db))
+        out = []
+        for r in rows.itertuples():
+            raw = float(r.level) if ctx.chain is None else float(
+                r.level - (ctx.chain.correct(np.array([r.freq_hz]), np.array([0.0]))[0]))
+            pose = (_num(r.height_m), r.polarization if isinstance(r.polarization, str) else None,
+                    _num(r.azimuth_deg))
+            out.append(_final_row(sequence.step(info["label"]), ctx, float(r.freq_hz), r.detector, raw, pose,
+                                  margin))
+        return out
+
     def run_dynamic(self, ctx, step: FinalStep, measurer) -> list[dict]:
         from bench.steps.prescan import far_context
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Annotated, Literal, Optional
 
 import numpy as np
@@ -52,7 +53,7 @@ from bench.steps.fields import (
 from bench.tomlsource import cross_check_error
 
 __all__ = ["HeightRange", "AzimuthRange", "PrescanStep", "PrescanKind", "FarFieldContext",
-           "far_context", "limit_for_site", "analyze_prescan", "prescan_poses"]
+           "far_context", "stored_context", "limit_for_site", "analyze_prescan", "prescan_poses"]
 
 log = logging.getLogger("bench.steps.prescan")
 
@@ -182,6 +183,13 @@ class PrescanKind(StepKind):
     def after_step(self, ctx, step: PrescanStep) -> list[dict]:
         return analyze_prescan(ctx.store, step, far_context(ctx, step))
 
+    def rejudge(self, run, info: dict, sequence, rows) -> list[dict]:
+        """The peaks of the stored spectrum searched again against the new limit and margin."""
+        step = sequence.step(info["label"])
+        if info.get("margin_db") is not None:
+            step = step.model_copy(update={"margin_db": float(info["margin_db"])})
+        return analyze_prescan(run, step, stored_context(run, info))
+
 
 def prescan_poses(step: PrescanStep) -> list[FarFieldPose]:
     """Polarization outer, azimuth next, heights inner; heights go up then down alternately
@@ -250,6 +258,24 @@ def far_context(ctx, step: PrescanStep) -> FarFieldContext:
     eut = bench.site.eut_size_m if bench.site is not None else None
     return FarFieldContext(chain=step_chain(ctx.store, step.label), limit=limit, distance_m=distance,
                            eut_size_m=eut)
+
+
+def stored_context(run, info: dict) -> FarFieldContext:
+    """The far-field context of a stored step: the limit its manifest entry names, its chain."""
+    from bench.analysis.limits import load_limit
+    from bench.analysis.runview import step_chain
+
+    distance = float(info.get("distance_m", 3.0))
+    ref = str(info["limit"])
+    path = Path(ref)
+    if path.is_absolute():
+        limit = load_limit(path)
+    elif ref.endswith(".toml") or "/" in ref:
+        limit = load_limit(Path(run.folder) / path)  # a limit file copied into the run folder
+    else:
+        limit = load_limit(ref)  # built-in
+    limit, _ = limit_for_site(limit, distance)
+    return FarFieldContext(chain=step_chain(run, info["label"]), limit=limit, distance_m=distance)
 
 
 # --------------------------------------------------------------------------- analysis
