@@ -68,8 +68,11 @@ def _load_bench(options: BenchOptions, stack: ExitStack | None):
         bench_path = Path(bench_path)
         from bench.simbench import start_simulated_bench
 
+        original = {role: getattr(bench, role).address for role in ("analyzer", "stage", "mast", "turntable", "supply")
+                    if getattr(bench, role, None) is not None}
         simulator, bench = start_simulated_bench(bench, board=options.board, seed=_seed(options),
                                                  realtime=options.realtime, faults=list(options.faults))
+        simulator.in_place_of = original
         if stack is not None:
             stack.callback(simulator.stop)
     return bench, Path(bench_path), simulator
@@ -95,7 +98,9 @@ def prepare(sequence_path: Path, options: BenchOptions, *, stack: ExitStack | No
     sim_settings = None
     if simulator is not None:
         sim_settings = {"board": str(Path(options.board).resolve()) if options.board else "demo",
-                        "seed": _seed(options), "realtime": options.realtime}
+                        "seed": _seed(options), "realtime": options.realtime,
+                        "in_place_of": {role: f"simulated in place of {address}"
+                                        for role, address in getattr(simulator, "in_place_of", {}).items()}}
     session = Session(sequence, Path(sequence_path), bench, bench_path, simulator,
                       sim_settings=sim_settings)
     try:

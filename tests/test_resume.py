@@ -121,7 +121,10 @@ def test_simulated_resume_keeps_the_run_board_and_seed(tmp_path, capsys):
     board.write_text((DEMO / "demo-board-fixed.toml").read_text(encoding="utf-8"), encoding="utf-8")
     folder = _run(tmp_path, _sequence(tmp_path), "--board", str(board), "--seed", "7")
     manifest = open_run(folder).manifest()
-    assert manifest["simulator"] == {"board": str(board.resolve()), "seed": 7, "realtime": False}
+    simulator = manifest["simulator"]
+    assert (simulator["board"], simulator["seed"], simulator["realtime"]) == (str(board.resolve()), 7, False)
+    # the bench file's own addresses are named, with what stood in for them
+    assert simulator["in_place_of"]["analyzer"] == "simulated in place of sim://analyzer"
     _kill_after(folder, "prescan")
     capsys.readouterr()
     # another seed is refused, naming both
