@@ -23,7 +23,6 @@ from typing import Callable
 import numpy as np
 
 from bench import units
-from bench.drivers.analyzer import SweepSettings
 from bench.errors import InstrumentError, PlanError, RunInterrupted, TransportError
 from bench.store import RunStore, TraceMeta
 
@@ -203,11 +202,7 @@ class Executor:
     def measure_segment(self, action, seg_index: int, seg, *, completes_action: bool) -> int:
         """Configure, sweep ``count`` times, combine, store. Returns the trace id."""
         analyzer = self.station.analyzer
-        settings = SweepSettings(start_hz=seg.start_hz, stop_hz=seg.stop_hz, rbw_hz=seg.rbw_hz,
-                                 vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
-                                 ref_level_dbm=seg.ref_level_dbm, attenuation_db=seg.attenuation_db,
-                                 sweep_time_s=getattr(seg, "sweep_time_s", None))
-        analyzer.configure(settings)
+        analyzer.configure(seg)  # a planned segment is the analyzer's settings type
         sweeps = []
         for _ in range(max(1, seg.count)):
             analyzer.sweep()

@@ -28,6 +28,7 @@ import numpy as np
 
 from bench.errors import PlanError, SafetyLimitError
 from bench.stagelimits import StageLimits
+from bench.sweepsettings import SweepSettings
 from bench.units import format_hz
 
 __all__ = [
@@ -189,21 +190,15 @@ def bench_caps(bench, *, analyzer: AnalyzerCaps = AnalyzerCaps(),
 
 
 @dataclass(frozen=True)
-class Segment:
-    """One analyzer configuration and trace: Hz, dBm, dB, s."""
+class Segment(SweepSettings):
+    """One planned trace: the analyzer's sweep settings (Hz, dBm, dB, s), how many sweeps are
+    combined and how (``trace_mode``: clear-write, max-hold, average), and the estimated time of
+    all of them, s. It is the analyzer's settings type, so it is sent to the driver as it is.
+    """
 
-    start_hz: float
-    stop_hz: float
-    points: int
-    rbw_hz: float
-    vbw_hz: float
-    detector: str
-    ref_level_dbm: Optional[float]
-    attenuation_db: Optional[float]
-    trace_mode: str
-    count: int
-    est_sweep_time_s: float
-    sweep_time_s: Optional[float] = None
+    trace_mode: str = "clear-write"
+    count: int = 1
+    est_sweep_time_s: float = 0.0
 
     @property
     def step_hz(self) -> float:

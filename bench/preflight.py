@@ -82,16 +82,14 @@ def preflight(checks: Checks) -> None:
 
 
 def _check_segments(checks: Checks) -> None:
-    from bench.drivers.analyzer import Analyzer, SweepSettings
+    from bench.drivers.analyzer import Analyzer
 
     probe = Analyzer(transport=_NoTransport(checks.bench.analyzer.address),
                      profile=checks.profiles["analyzer"])
     for action in checks.plan.actions:
         for seg in action.segments:
             try:
-                probe.validate(SweepSettings(start_hz=seg.start_hz, stop_hz=seg.stop_hz, rbw_hz=seg.rbw_hz,
-                                             vbw_hz=seg.vbw_hz, points=seg.points, detector=seg.detector,
-                                             attenuation_db=seg.attenuation_db))
+                probe.validate(seg)
             except PlanError as exc:
                 raise _at(PlanError(f"step '{action.step_label}': {exc}"),
                           "steps", _index(checks.sequence, action.step_label)) from None

@@ -19,11 +19,11 @@ from __future__ import annotations
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
 
 import numpy as np
 
 from bench import units
+from bench.sweepsettings import SweepSettings
 from bench.drivers.analyzer_profile import (
     BINARY_WIDTHS,
     AnalyzerProfile,
@@ -48,42 +48,6 @@ FLOOR_DBM = -250.0
 #: A reading this far above the input's damage level means a destroyed input or misread data.
 DAMAGE_HEADROOM_DB = 20.0
 _TINY = 1e-30  # a level this close to zero but not zero: bytes read in the wrong order
-
-
-@dataclass(frozen=True)
-class SweepSettings:
-    """One sweep's settings, SI inside.
-
-    Attributes
-    ----------
-    start_hz, stop_hz : float
-        Frequency axis; points are spread linearly from start to stop inclusive.
-    rbw_hz, vbw_hz : float
-        Resolution and video bandwidths.
-    points : int
-        Trace points.
-    detector : str
-        Trade name, one of :data:`DETECTORS`.
-    ref_level_dbm, attenuation_db : float or None
-        None leaves the instrument's value unchanged.
-    sweep_time_s : float or None
-        Manual sweep time (with ``start_hz == stop_hz``, zero span: the dwell at one frequency);
-        None lets the instrument couple it to span and RBW.
-    """
-
-    start_hz: float
-    stop_hz: float
-    rbw_hz: float
-    vbw_hz: float
-    points: int
-    detector: str = "peak"
-    ref_level_dbm: float | None = None
-    attenuation_db: float | None = None
-    sweep_time_s: float | None = None
-
-    def freq_axis_hz(self) -> np.ndarray:
-        """f_i = start + i*(stop-start)/(N-1) (common practice for swept traces)."""
-        return np.linspace(self.start_hz, self.stop_hz, self.points)
 
 
 def _fmt(value) -> str:

@@ -34,7 +34,7 @@ BEGIN = ("<!-- import rules: generated from GROUPS in tests/test_architecture.py
          "`python tests/test_architecture.py --write-docs`; do not edit by hand -->")
 END = "<!-- end of import rules -->"
 
-LEAVES = ("root", "errors", "units", "physics", "stagelimits")
+LEAVES = ("root", "errors", "units", "physics", "stagelimits", "sweepsettings")
 
 #: group -> (modules, groups (or single modules) it may import), bottom layer first.
 GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
@@ -43,6 +43,7 @@ GROUPS: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
     "units": (("bench.units",), ("errors",)),
     "physics": (("bench.physics",), ("units", "errors")),
     "stagelimits": (("bench.stagelimits",), ("errors",)),
+    "sweepsettings": (("bench.sweepsettings",), ()),
     "protocol": (("bench.ieee488", "bench.wire", "bench.visawire", "bench.serialwire", "bench.framing",
                   "bench.transports"), LEAVES),
     "files": (("bench.tomlsource", "bench.benchfile", "bench.provenance"), LEAVES),
