@@ -56,13 +56,14 @@ def test_driver_and_simulator_over_pyvisa_py(sim, big_endian):
         an.transport.close()
     freq = np.linspace(96e6, 99e6, 1001)
     # The FM ambient carrier near 97.3 MHz is a CW line: the peak of the trace must read the world's
-    # line level within the worst-case scalloping at a 3 kHz step (Gaussian RBW, reference sheet §1.7)
+    # line level within the worst-case scalloping at a 3 kHz step (Gaussian RBW
+    # filter, derived: docs/physics.md)
     lines = [ln for ln in sim.world.lines(sim.state, 96e6, 99e6) if ln.source.startswith("fm-broadcast-97")]
     assert lines, "the demo board has an FM ambient carrier at 97.3 MHz"
     expected = 10 * np.log10(sum(10 ** (ln.level_dbm / 10) for ln in lines))
     i = int(np.argmax(trace_dbm))
     assert abs(freq[i] - lines[0].freq_hz) <= 3e3
-    step_db = 6 * (2 * 1.5e3 / 120e3) ** 2  # 6*(2*df/B6)^2 at df = step/2 (reference sheet §1.7)
+    step_db = 6 * (2 * 1.5e3 / 120e3) ** 2  # 6*(2*df/B6)^2 at df = step/2 (derived)
     assert trace_dbm[i] == pytest.approx(expected, abs=step_db + 0.3)
 
 
@@ -308,13 +309,15 @@ def test_far_field_prescan_suspects_ambient_and_finals(tmp_path, capsys):
         assert dets == {"peak", "quasi-peak", "cispr-average"}
     # No ambient signal is remeasured
     assert fin[(fin.freq_hz - 97.3e6).abs() < 0.3e6].empty
-    # On one signal at one pose: peak >= quasi-peak >= average (reference sheet §1.6); a small
+    # On one signal at one pose: peak >= quasi-peak >= average (CISPR 16-1-1
+    # detector definitions; common practice); a small
     # allowance for the receiver noise of separate sweeps
     for f, g in fin.groupby("freq_hz"):
         lv = dict(zip(g.detector, g.level))
         assert lv["peak"] >= lv["quasi-peak"] - 0.5 >= lv["cispr-average"] - 1.0
     # The burst-modulated radio harmonic (867.84 MHz, 10 % duty) reads far lower on the average
-    # detector: AVG ~ peak + 20 log10(duty) = -20 dB for a long dwell (reference sheet §1.5)
+    # detector: AVG ~ peak + 20 log10(duty) = -20 dB for a long dwell
+    # (derived; CISPR 16-1-1 average detector)
     burst = fin[(fin.freq_hz - 867.84e6).abs() < 0.3e6]
     if not burst.empty:
         lv = dict(zip(burst.detector, burst.level))
