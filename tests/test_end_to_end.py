@@ -56,13 +56,14 @@ def test_driver_and_simulator_over_pyvisa_py(sim, big_endian):
         an.transport.close()
     freq = np.linspace(96e6, 99e6, 1001)
     # The FM ambient carrier near 97.3 MHz is a CW line: the peak of the trace must read the world's
-    # line level within the worst-case scalloping at a 3 kHz step (Gaussian RBW, reference sheet §1.7)
+    # line level within the worst-case scalloping at a 3 kHz step (Gaussian RBW
+    # filter, derived: docs/physics.md)
     lines = [ln for ln in sim.world.lines(sim.state, 96e6, 99e6) if ln.source.startswith("fm-broadcast-97")]
     assert lines, "the demo board has an FM ambient carrier at 97.3 MHz"
     expected = 10 * np.log10(sum(10 ** (ln.level_dbm / 10) for ln in lines))
     i = int(np.argmax(trace_dbm))
     assert abs(freq[i] - lines[0].freq_hz) <= 3e3
-    step_db = 6 * (2 * 1.5e3 / 120e3) ** 2  # 6*(2*df/B6)^2 at df = step/2 (reference sheet §1.7)
+    step_db = 6 * (2 * 1.5e3 / 120e3) ** 2  # 6*(2*df/B6)^2 at df = step/2 (derived)
     assert trace_dbm[i] == pytest.approx(expected, abs=step_db + 0.3)
 
 
@@ -203,7 +204,34 @@ sweep = "cd"
     assert run.manifest()["state"] == "complete"
     assert list(meta["step_label"]) == ["ambient", "on", "again"]
     assert meta["action_index"].is_unique
+    resumed = [run.trace(int(i))[1] for i in meta.id]
     run.close()
+    # the same sequence and seed without the interruption measures the same traces, bit for bit
+    assert main(["run", str(seq), "--sim", "--no-plots", "--out", str(tmp_path / "whole")]) == 0
+    for got, want in zip(resumed, _all_traces(tmp_path / "whole"), strict=True):
+        np.testing.assert_array_equal(got, want)
+
+
+def _all_traces(runs: Path) -> list[np.ndarray]:
+    """Levels of every trace of the single run in ``runs``, in measurement order."""
+    (folder,) = list(runs.iterdir())
+    run = open_run(folder)
+    try:
+        return [run.trace(int(i))[1] for i in run.traces().id]
+    finally:
+        run.close()
+
+
+def test_two_runs_of_one_sequence_and_seed_give_identical_traces(tmp_path, capsys):
+    seq = _write(tmp_path / "quick.toml", QUICK)
+    for name in ("first", "second"):
+        code = main(["run", str(seq), "--sim", "--seed", "4", "--no-plots",
+                     "--out", str(tmp_path / name)])
+        assert code == 0, capsys.readouterr().err
+    first, second = _all_traces(tmp_path / "first"), _all_traces(tmp_path / "second")
+    assert len(first) == len(second) == 2
+    for a, b in zip(first, second, strict=True):
+        np.testing.assert_array_equal(a, b)
 
 
 def _single_emitter_board(tmp_path: Path, x_mm: float, y_mm: float) -> Path:
@@ -308,13 +336,15 @@ def test_far_field_prescan_suspects_ambient_and_finals(tmp_path, capsys):
         assert dets == {"peak", "quasi-peak", "cispr-average"}
     # No ambient signal is remeasured
     assert fin[(fin.freq_hz - 97.3e6).abs() < 0.3e6].empty
-    # On one signal at one pose: peak >= quasi-peak >= average (reference sheet §1.6); a small
+    # On one signal at one pose: peak >= quasi-peak >= average (CISPR 16-1-1
+    # detector definitions; common practice); a small
     # allowance for the receiver noise of separate sweeps
     for f, g in fin.groupby("freq_hz"):
         lv = dict(zip(g.detector, g.level))
         assert lv["peak"] >= lv["quasi-peak"] - 0.5 >= lv["cispr-average"] - 1.0
     # The burst-modulated radio harmonic (867.84 MHz, 10 % duty) reads far lower on the average
-    # detector: AVG ~ peak + 20 log10(duty) = -20 dB for a long dwell (reference sheet §1.5)
+    # detector: AVG ~ peak + 20 log10(duty) = -20 dB for a long dwell
+    # (derived; CISPR 16-1-1 average detector)
     burst = fin[(fin.freq_hz - 867.84e6).abs() < 0.3e6]
     if not burst.empty:
         lv = dict(zip(burst.detector, burst.level))

@@ -1,4 +1,4 @@
-"""Physics of the simulated analyzer's receiver model, checked against the reference sheet."""
+"""Physics of the simulated analyzer's receiver model, against published and derived values."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ from bench.sim.clock import VirtualClock
 from bench.sim.receiver import ReceiverSettings, sweep, synthesize_trace
 from bench.sim.state import Line, SimState
 
-KT_DBM_PER_HZ = -173.98  # reference sheet §4: kT at 290 K
+KT_DBM_PER_HZ = -173.98  # kT at 290 K: derived from Boltzmann's constant (docs/physics.md)
 
 
 def _power_mean_db(level_dbm: np.ndarray) -> float:
@@ -39,8 +39,9 @@ def _noise_only(rbw_hz: float, detector: str = "RMS", att_db: float = 10.0,
 
 
 def test_noise_floor_matches_kTB_plus_nf_in_the_gaussian_noise_bandwidth():
-    # ENBW of the CISPR 120 kHz filter = 90.33 kHz: reference sheet §1.9 table.
-    # Floor = kT + NF + 10 log10(ENBW) + attenuation: reference sheet §8 (DANL) and §4 (kT).
+    # ENBW of the CISPR 120 kHz filter = 90.33 kHz: Gaussian RBW filter, derived.
+    # Floor = kT + NF + 10 log10(ENBW) + attenuation: DANL derived
+    # (docs/physics.md); kT = -173.98 dBm/Hz from Boltzmann's constant.
     expected_dbm = KT_DBM_PER_HZ + 24.0 + 10.0 * math.log10(90.33e3) + 10.0
     measured_dbm = _power_mean_db(_noise_only(120e3))
     assert measured_dbm == pytest.approx(expected_dbm, abs=0.1)
@@ -48,18 +49,18 @@ def test_noise_floor_matches_kTB_plus_nf_in_the_gaussian_noise_bandwidth():
 
 @pytest.mark.parametrize("rbw_hz, enbw_hz", [(200.0, 150.5), (9e3, 6.774e3), (120e3, 90.33e3)])
 def test_enbw_matches_the_cispr_bandwidth_table(rbw_hz, enbw_hz):
-    # reference sheet §1.9 table: B6 -> ENBW for the three CISPR bandwidths
+    # Gaussian RBW filter, derived (docs/physics.md): B6 -> ENBW for the three CISPR bandwidths
     assert receiver.enbw_hz(rbw_hz) == pytest.approx(enbw_hz, rel=1e-3)
 
 
 def test_noise_floor_rises_10_db_per_decade_of_rbw():
-    # DANL = -174 + NF + 10 log10(RBW): 10 dB per decade (reference sheet §8)
+    # DANL = -174 + NF + 10 log10(RBW): 10 dB per decade (derived)
     floors = [_power_mean_db(_noise_only(rbw)) for rbw in (1e3, 10e3, 100e3, 1e6)]
     assert np.diff(floors) == pytest.approx([10.0, 10.0, 10.0], abs=0.1)
 
 
 def test_attenuation_raises_the_floor_db_for_db_while_a_cw_line_stays():
-    # attenuator before the mixer: floor rises dB for dB, display corrected (reference sheet §8)
+    # attenuator before the mixer: floor rises dB for dB, display corrected (common practice)
     line = Line(freq_hz=150e6, level_dbm=-30.0)
     floors, readings = [], []
     for att_db in (0.0, 10.0, 20.0, 30.0):
@@ -74,14 +75,14 @@ def test_attenuation_raises_the_floor_db_for_db_while_a_cw_line_stays():
 
 
 def test_log_average_of_noise_reads_2_51_db_below_rms():
-    # log-average = RMS - 2.51 dB on a Rayleigh envelope (reference sheet §8)
+    # log-average = RMS - 2.51 dB on a Rayleigh envelope (derived)
     rms_dbm = _power_mean_db(_noise_only(100e3, "RMS"))
     log_avg_dbm = float(np.mean(_noise_only(100e3, "AVER")))
     assert rms_dbm - log_avg_dbm == pytest.approx(2.51, abs=0.1)
 
 
 def test_cispr_average_of_noise_reads_1_05_db_below_rms():
-    # linear envelope average = RMS - 1.05 dB on a Rayleigh envelope (reference sheet §8)
+    # linear envelope average = RMS - 1.05 dB on a Rayleigh envelope (derived)
     settings = ReceiverSettings(100e6, 200e6, 40001, 100e3, detector="CAV")
     cav = synthesize_trace([], settings, _rng())
     assert receiver.samples_per_bucket(settings) == 1  # one envelope sample per point
@@ -99,7 +100,7 @@ def test_peak_detector_on_noise_follows_order_statistics_of_the_envelope():
     harmonic_32 = sum(1.0 / k for k in range(1, 33))
     rms_mw = 10.0 ** (receiver.noise_floor_dbm(settings) / 10.0)
     assert np.mean(10.0 ** (trace / 10.0)) / rms_mw == pytest.approx(harmonic_32, rel=0.02)
-    # peak above RMS, negative peak below (detector ordering, reference sheet §1.6, §8)
+    # peak above RMS, negative peak below (detector ordering; common practice)
     neg = synthesize_trace([], ReceiverSettings(100e6, 200e6, 20001, 100e3, detector="NEG",
                                                 sweep_time_s=10.0), _rng())
     assert _power_mean_db(neg) < receiver.noise_floor_dbm(settings) < float(np.mean(trace))
@@ -111,8 +112,10 @@ def test_peak_detector_on_noise_follows_order_statistics_of_the_envelope():
 @pytest.mark.parametrize("detector", ["POS", "NEG", "SAMP", "AVER", "RMS", "QPE", "CAV"])
 @pytest.mark.parametrize("rbw_hz", [10e3, 100e3, 1e6])
 def test_cw_line_reads_its_level_whatever_the_rbw_and_detector(rbw_hz, detector):
-    # a CW sine reads the same with every detector and averaging type (reference sheet §1.6, §8);
-    # the displayed level of a line centred on a bin does not depend on the RBW (§1.7 at df = 0)
+    # a CW sine reads the same with every detector and averaging type (CISPR 16-1-1
+    # detector definitions; common practice);
+    # the displayed level of a line centred on a bin does not depend on the RBW (Gaussian
+    # RBW filter at df = 0)
     settings = ReceiverSettings(140e6, 160e6, 2001, rbw_hz, detector=detector)
     trace = synthesize_trace([Line(150e6, -30.0)], settings, _rng())
     assert trace[1000] == pytest.approx(-30.0, abs=0.2)
@@ -120,7 +123,8 @@ def test_cw_line_reads_its_level_whatever_the_rbw_and_detector(rbw_hz, detector)
 
 @pytest.mark.parametrize("step_fraction, worst_db", [(1 / 2, 1.50), (1 / 3, 0.67), (1 / 4, 0.38)])
 def test_scalloping_worst_case_for_a_step_of_a_fraction_of_b6(step_fraction, worst_db):
-    # reference sheet §1.7: worst-case error 1.50 / 0.67 / 0.38 dB for step B6/2, B6/3, B6/4
+    # Gaussian RBW filter, derived (docs/physics.md): worst-case error 1.50 / 0.67 / 0.38 dB for
+    # step B6/2, B6/3, B6/4
     rbw_hz = 120e3
     step_hz = rbw_hz * step_fraction
     settings = ReceiverSettings(100e6, 100e6 + 1000 * step_hz, 1001, rbw_hz, detector="SAMP")
@@ -130,14 +134,15 @@ def test_scalloping_worst_case_for_a_step_of_a_fraction_of_b6(step_fraction, wor
 
 
 def test_line_half_the_6db_bandwidth_off_a_point_reads_6_db_down():
-    # definition of the 6 dB bandwidth B6 (reference sheet §1.1, §1.9): -6.02 dB (half amplitude)
+    # definition of the 6 dB bandwidth B6 (CISPR 16-1-1; Gaussian RBW filter,
+    # derived): -6.02 dB (half amplitude)
     settings = ReceiverSettings(99e6, 101e6, 201, 100e3, detector="SAMP")  # 10 kHz step
     trace = synthesize_trace([Line(100e6 + 50e3, -20.0)], settings, _rng())
     assert trace[100] == pytest.approx(-20.0 - 20.0 * math.log10(2.0), abs=0.01)
 
 
 def test_integrated_filter_response_equals_the_noise_bandwidth():
-    # ENBW = integral of the power response: 90.33 kHz for B6 = 120 kHz (reference sheet §1.9)
+    # ENBW = integral of the power response: 90.33 kHz for B6 = 120 kHz (derived)
     settings = ReceiverSettings(99e6, 101e6, 4001, 120e3, detector="SAMP")
     trace = synthesize_trace([Line(100e6, -20.0)], settings, _rng())
     gain = 10.0 ** ((trace + 20.0) / 10.0)
@@ -155,7 +160,7 @@ def test_lines_far_outside_the_span_do_not_show():
 
 
 @pytest.mark.parametrize("start_hz, stop_hz, rbw_hz, expected_s", [
-    (30e6, 1e9, 120e3, 0.168),   # reference sheet §8 sweep-time examples, k = 2.5
+    (30e6, 1e9, 120e3, 0.168),   # k span/RBW^2, k = 2.5 (Witte; Engelson)
     (1e9, 2e9, 1e6, 2.5e-3),
 ])
 def test_sweep_time_examples(start_hz, stop_hz, rbw_hz, expected_s):
@@ -164,7 +169,7 @@ def test_sweep_time_examples(start_hz, stop_hz, rbw_hz, expected_s):
 
 
 def test_sweep_time_with_vbw_below_rbw_and_the_floor():
-    # ST = k span/(RBW VBW) when VBW < RBW (reference sheet §8, marked from memory there)
+    # ST = k span/(RBW VBW) when VBW < RBW (Witte; Engelson; from memory)
     settings = ReceiverSettings(30e6, 1e9, 1001, 120e3, vbw_hz=12e3)
     assert receiver.sweep_time_s(settings) == pytest.approx(2.5 * 970e6 / (120e3 * 12e3))
     narrow = ReceiverSettings(100e6, 100.1e6, 101, 1e6)
@@ -193,7 +198,7 @@ def _reading(level_dbm: float, att_db: float) -> tuple[float, bool]:
 
 def test_overload_check_10_db_more_attenuation_changes_reading():
     # overload check: a 10 dB attenuation step must change the corrected reading by < 1 dB,
-    # more means compression (reference sheet §8, common practice)
+    # more means compression (common practice)
     strong_0, flag_0 = _reading(0.0, 0.0)
     strong_10, _ = _reading(0.0, 10.0)
     weak_10, flag_weak = _reading(-40.0, 10.0)
@@ -221,7 +226,8 @@ def _zero_span(detector: str, line: Line, sweep_time_s: float, points: int = 400
 def test_burst_line_long_dwell_peak_and_average():
     line = Line(200e6, -40.0, prf_hz=1e3, duty=0.1)
     slow_s = 4001 * 2e-3  # dwell 2 ms per point covers two burst periods
-    # peak holds the on level; linear average reads level + 20 log10(duty) (reference sheet §1.5)
+    # peak holds the on level; linear average reads level + 20 log10(duty)
+    # (derived; CISPR 16-1-1 average detector)
     assert np.median(_zero_span("POS", line, slow_s)) == pytest.approx(-40.0, abs=0.2)
     assert np.median(_zero_span("AVER", line, slow_s)) == pytest.approx(-60.0, abs=0.3)
     # power average: on level + 10 log10(duty) (derived: mean power of an on/off carrier)
@@ -257,7 +263,8 @@ def test_quasi_peak_and_cispr_average_use_the_detector_model(monkeypatch):
 
 
 def test_detector_ordering_for_a_burst_line_with_the_real_detector_model():
-    # Peak >= QP >= Average for any signal (reference sheet §1.6)
+    # Peak >= QP >= Average for any signal (CISPR 16-1-1 detector definitions;
+    # common practice)
     pytest.importorskip("bench.sim.detectors", reason="detector model not installed")
     line = Line(150e6, -40.0, prf_hz=100.0, duty=0.05)
     readings = {}

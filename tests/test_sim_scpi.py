@@ -487,3 +487,51 @@ def test_mode_selection_and_display_switch(bench):
     assert client.query("INST?;:DISP:ENAB?") == "SAN;0"
     client.write("INST:SEL RECEIVER")
     assert client.errors() == ["-224,\"Illegal parameter value;expected SANalyzer, found 'RECEIVER'\""]
+
+
+# ---------------------------------------------------------------- noise keyed by settings and pose
+
+
+def _trace(client: Client) -> bytes:
+    client.write("FORM REAL,32;:INIT;*WAI;:TRAC? TRACE1")
+    return client.read_block()
+
+
+def test_a_trace_repeats_bit_for_bit_when_its_settings_and_pose_come_back(bench):
+    analyzer, client, _, _ = bench
+    _single_sweep_setup(client)
+    first, second = _trace(client), _trace(client)
+    assert first != second  # the next sweep at the same key is a new noise draw
+    client.write("FREQ:STAR 95 MHZ")  # other settings
+    other_settings = _trace(client)
+    client.write("FREQ:STAR 90 MHZ")
+    with analyzer.state.lock:
+        analyzer.state.probe_m = [0.01, 0.02, 0.03]  # another pose, same settings
+    other_pose = _trace(client)
+    assert other_pose != first and len(other_settings) == len(first)
+    with analyzer.state.lock:
+        analyzer.state.probe_m = [0.0, 0.0, 0.05]  # back to the first pose
+    assert _trace(client) == first
+    assert _trace(client) == second
+
+
+def test_each_pose_field_and_setting_changes_the_noise(bench):
+    analyzer, client, _, _ = bench
+    _single_sweep_setup(client, points=201)
+    reference = _trace(client)
+    changes = [("probe_rotation_deg", 90.0), ("tool", 2), ("board_powered", False),
+               ("mast_height_m", 2.0), ("polarization", "vertical"), ("azimuth_deg", 45.0)]
+    for name, value in changes:
+        with analyzer.state.lock:
+            before = getattr(analyzer.state, name)
+            setattr(analyzer.state, name, value)
+        assert _trace(client) != reference, name
+        with analyzer.state.lock:
+            setattr(analyzer.state, name, before)
+        assert _trace(client) == reference, name
+    for command, undo in [("DET RMS", "DET POS"), ("BAND:VID 10 KHZ", "BAND:VID:AUTO ON"),
+                          ("INP:ATT 40", "INP:ATT:AUTO ON"), ("SWE:TIME 1 S", "SWE:TIME:AUTO ON")]:
+        client.write(command)
+        assert _trace(client) != reference, command
+        client.write(undo)
+        assert _trace(client) == reference, undo

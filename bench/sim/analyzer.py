@@ -41,6 +41,7 @@ from bench.sim.scpisyntax import (
     setting_row,
 )
 from bench.sim.state import SimState
+from bench.sim.tracerng import TraceRng, pose_fields
 from bench.sim.traceformat import encode_trace
 
 __all__ = [
@@ -151,7 +152,9 @@ class SimAnalyzer(ScpiInstrument):
     clock : VirtualClock
         Advanced by the sweep time of every sweep.
     seed : int
-        Noise seed; sweep ``n`` uses ``numpy.random.default_rng([seed, n])``.
+        Noise seed. Each sweep draws from a generator keyed by the seed, the settings, the
+        pose and the repeat number (:class:`~bench.sim.tracerng.TraceRng`), so a trace is the
+        same whenever it is measured.
     noise_figure_db : float
         Receiver noise figure with 0 dB attenuation, dB.
     faults : Faults, optional
@@ -173,6 +176,7 @@ class SimAnalyzer(ScpiInstrument):
         self.setup = AnalyzerSetup()
         self.last_sweep: receiver.Sweep | None = None
         self.sweep_count = 0
+        self.trace_rng = TraceRng(seed)
         self.marker_index = 0
         self.ques_event = 0
         self._polls_left = 0  # status polls before the pending sweep shows as done
@@ -261,7 +265,8 @@ class SimAnalyzer(ScpiInstrument):
         with self.state.lock:
             lines = self.world.lines(self.state, max(0.0, settings.start_hz - margin_hz),
                                      settings.stop_hz + margin_hz)
-        rng = np.random.default_rng([self.seed, self.sweep_count])
+            pose = pose_fields(self.state)
+        rng = self.trace_rng.generator(settings, pose)
         result = receiver.sweep(lines, settings, rng)
         self.clock.advance(result.sweep_time_s)
         self.last_sweep = result

@@ -3,9 +3,11 @@
 The receiver model works on the envelope of the IF signal. Everything is expressed in
 **RMS-equivalent volts**: an envelope of peak amplitude ``E`` is stored as ``E / sqrt(2)``, so a
 CW sine of RMS level ``V`` has the constant envelope ``V`` and every detector, calibrated the
-CISPR way (reference sheet §1.5: "an unmodulated sine reads its RMS value"), reads ``V``.
+CISPR way ("an unmodulated sine reads its RMS value": CISPR 16-1-1 average / rms-average
+detectors), reads ``V``.
 
-Signal chain (reference sheet §1.2 and §1.5)::
+Signal chain (CISPR 16-1-1 quasi-peak time constants, charge time constant definition from
+memory; CISPR 16-1-1 average / rms-average detectors, rms corner PRFs from memory)::
 
     envelope e(t) of the Gaussian IF filter (B6 of the band)
       peak          : max e(t) over the dwell
@@ -15,7 +17,8 @@ Signal chain (reference sheet §1.2 and §1.5)::
                         g(x) = (sqrt(1 - x^2) - x arccos x)/pi  for x < 1, 0 otherwise
                       (``model="envelope"``: g(x) = 1 - x, the ideal envelope detector); tau_R
                       is set so that a switched-on sine reaches 63 % of its final value after
-                      the band's charge time constant (the definition, sheet §1.2);
+                      the band's charge time constant (CISPR 16-1-1 quasi-peak
+                      time constants; charge time constant definition: from memory);
                       then a critically damped meter  y'' + 2 w0 y' + w0^2 y = w0^2 V, w0 = 1/tau_M
                       reading = max y over the dwell / (CW gain of the diode circuit)
       CISPR average : the same critically damped meter driven by e(t) itself, max held
@@ -63,7 +66,7 @@ __all__ = [
     "to_dbuv",
 ]
 
-# Gaussian filter: B_imp / B6 = sqrt(pi / (4 ln 2)) (reference sheet §1.9).
+# Gaussian filter: B_imp / B6 = sqrt(pi / (4 ln 2)) (derived: docs/physics.md).
 IMPULSE_TO_6DB = math.sqrt(math.pi / (4.0 * math.log(2.0)))
 
 _EDGE_HALF_WIDTH = 3.5  # in units of 1/B_imp: exp(-pi * 3.5**2) = 2e-17, the Gaussian is gone
@@ -91,7 +94,8 @@ class Band:
     tau_meter_avg_s : float
         Meter time constant of the CISPR average and rms-average detectors.
     rms_corner_prf_hz : float
-        Corner PRF of the rms-average detector (from memory, reference sheet §1.5).
+        Corner PRF of the rms-average detector (CISPR 16-1-1 average /
+        rms-average detectors; rms corner PRFs from memory).
     """
 
     name: str
@@ -106,17 +110,20 @@ class Band:
 
     @property
     def b_imp_hz(self) -> float:
-        """Impulse bandwidth of the Gaussian filter, B_imp = 1.0645 * B6 (sheet §1.9)."""
+        """Impulse bandwidth of the Gaussian filter, B_imp = 1.0645 * B6 (derived)."""
         return self.b6_hz * IMPULSE_TO_6DB
 
     @property
     def b3_hz(self) -> float:
-        """3 dB bandwidth of the Gaussian filter, B6 / sqrt(2) (sheet §1.9)."""
+        """3 dB bandwidth of the Gaussian filter, B6 / sqrt(2) (derived: docs/physics.md)."""
         return self.b6_hz / math.sqrt(2.0)
 
 
-# Reference sheet §1.1 (bands, B6), §1.2 (QP constants), §1.5 (average meter, rms corners).
-# Band E is specified by B_imp = 1 MHz (sheet §1.1, from memory), so B6 = 1 MHz / 1.0645.
+# Bands and B6: CISPR 16-1-1 band/bandwidth table (band E as an impulse bandwidth: from memory).
+# QP constants: CISPR 16-1-1 quasi-peak time constants (charge time constant definition: from
+# memory). Average meter and rms corners: CISPR 16-1-1 average / rms-average detectors (rms
+# corner PRFs from memory).
+# Band E is specified by B_imp = 1 MHz (CISPR 16-1-1, from memory), so B6 = 1 MHz / 1.0645.
 BANDS: dict[str, Band] = {
     "A": Band("A", 9e3, 150e3, 200.0, 45e-3, 500e-3, 160e-3, 160e-3, 10.0),
     "B": Band("B", 150e3, 30e6, 9e3, 1e-3, 160e-3, 160e-3, 160e-3, 10.0),
@@ -192,7 +199,8 @@ def cw_envelope(level_v: float) -> Envelope:
 def impulse_train_envelope(area_vs: float, prf_hz: float | None, band: Band) -> Envelope:
     """IF envelope of ideal impulses of area ``area_vs`` (V*s) through the band's Gaussian filter.
 
-    A single impulse gives the envelope 2 A B_imp exp(-pi (B_imp t)^2) (volts peak; sheet §1.9),
+    A single impulse gives the envelope 2 A B_imp exp(-pi (B_imp t)^2) (volts peak;
+    Gaussian RBW filter, derived: docs/physics.md),
     i.e. sqrt(2) A B_imp exp(...) RMS-equivalent. Overlapping responses of a fast train are
     added coherently (receiver tuned to a line of the train).
 
@@ -349,7 +357,8 @@ class _Diode:
     """Charge/discharge circuit dV/dt = (e/tau_R) g(V/e) - V/tau_d, with tables for plateaus.
 
     ``tau_R`` = R_c C is chosen so that a sine switched on brings V to 63 % of its final value
-    after the band's electrical charge time constant (the definition, sheet §1.2).
+    after the band's electrical charge time constant (CISPR 16-1-1 quasi-peak
+    time constants; charge time constant definition: from memory).
     """
 
     def __init__(self, model: str, tau_charge_s: float, tau_discharge_s: float) -> None:
@@ -493,8 +502,9 @@ def _next_conducting(grid: _Grid, k: int, v: float, tau_d: float) -> int:
 def _meter_max(t_s: np.ndarray, cum_vs: np.ndarray, tau_m_s: float, dwell_s: float) -> float:
     """Maximum over the dwell of a critically damped meter driven by x(t), given its integral.
 
-    The meter y'' + 2 w0 y' + w0^2 y = w0^2 x (sheet §1.2) is discretised exactly for a
-    piecewise-constant input (zero-order hold) on bins of tau_m/400 and fed the bin means of x.
+    The meter y'' + 2 w0 y' + w0^2 y = w0^2 x (CISPR 16-1-1 QP time constants) is discretised
+    exactly for a piecewise-constant input (zero-order hold) on bins of tau_m/400 and fed the bin
+    means of x.
     """
     n_bins = max(16, math.ceil(_METER_BINS_PER_TAU * dwell_s / tau_m_s))
     dt = dwell_s / n_bins
@@ -585,7 +595,10 @@ def _check_dwell(dwell_s: float) -> None:
 
 
 def peak(env: Envelope) -> float:
-    """Peak detector reading, volts RMS-equivalent (max of the envelope; sheet §1.5)."""
+    """Peak detector reading, volts RMS-equivalent (max of the envelope).
+
+    FCC 47 CFR 15.35(a) and CISPR 16-1-1 detector definitions.
+    """
     return env.peak_v
 
 
@@ -628,7 +641,7 @@ def quasi_peak(env: Envelope, band: Band, dwell_s: float = 1.0, model: str = "ca
 
 
 def cispr_average(env: Envelope, band: Band, dwell_s: float = 1.0) -> float:
-    """CISPR average reading, volts RMS-equivalent (sheet §1.5).
+    """CISPR average reading, volts RMS-equivalent (CISPR 16-1-1 average detector).
 
     Linear average of the envelope by the critically damped meter of time constant
     ``band.tau_meter_avg_s``, maximum held over ``dwell_s``; a CW sine reads its RMS value.
@@ -640,7 +653,9 @@ def cispr_average(env: Envelope, band: Band, dwell_s: float = 1.0) -> float:
 
 
 def rms_average(env: Envelope, band: Band, dwell_s: float = 1.0) -> float:
-    """RMS-average reading, volts RMS-equivalent (sheet §1.5).
+    """RMS-average reading, volts RMS-equivalent (CISPR 16-1-1 rms-average detector).
+
+    Corner PRFs from memory.
 
     Power average of the envelope with a one-pole time constant tau_rms, square root, then the
     meter of the average detector, maximum held. For a pulse train of energy integral W per

@@ -1,7 +1,8 @@
 """Simulated G-code probe stage (served on a wire by :mod:`bench.sim.lineserver`).
 
-:class:`SimStage` parses G-code lines and answers as a stage controller does (reference sheet
-§10): ``ok`` after each line, an error line instead when it refuses. It keeps a planned
+:class:`SimStage` parses G-code lines and answers as a stage controller does (NIST
+RS274NGC v3, NISTIR 6556, for G-code; firmware line protocol and banner: from memory): ``ok``
+after each line, an error line instead when it refuses. It keeps a planned
 position (where buffered moves will end) and a motion queue on the shared virtual clock: a move
 takes the time a trapezoidal velocity profile needs, the clock advances when something waits
 (``M400``, ``G4``, homing) or when another simulated instrument advances it, and the probe
@@ -360,7 +361,7 @@ class SimStage(LineEngine):
         for g in g_codes:
             motion = self._g_code(g, values, letters, emit) or motion
         if "F" in values:
-            self._feed_m_per_s = values["F"] * self._unit_m / 60.0  # F in units per minute (§10)
+            self._feed_m_per_s = values["F"] * self._unit_m / 60.0  # F: units/min (RS274NGC)
         axes = letters & {"X", "Y", "Z", "A"}
         if axes and (motion or not g_codes and not m_codes):
             self._move(motion or self._motion, values, emit)

@@ -3,20 +3,22 @@
 Given the spectral lines at the analyzer input (dBm RMS, from the world model) and the receiver
 settings, :func:`sweep` returns what the analyzer displays:
 
-* the trace axis is ``f_i = start + i*(stop - start)/(N - 1)`` (reference sheet §8);
+* the trace axis is ``f_i = start + i*(stop - start)/(N - 1)`` (common practice);
 * each line passes the resolution filter, a Gaussian whose 6 dB bandwidth is the RBW (the CISPR
   filter type). Its amplitude is halved at ``df = B6/2``, so a tone at offset ``df`` is
-  attenuated by ``20*log10(2)*(2*df/B6)**2`` = ``6.02*(2*df/B6)**2`` dB (sheet §1.7, §1.9);
+  attenuated by ``20*log10(2)*(2*df/B6)**2`` = ``6.02*(2*df/B6)**2`` dB
+  (Gaussian RBW filter, derived: docs/physics.md);
 * the noise floor is thermal noise at 290 K times the noise figure in the filter's equivalent
-  noise bandwidth, ENBW = 1.0645*B3 with B3 = B6/sqrt(2) (sheet §1.9), raised dB for dB by the
-  input attenuator, which sits before the mixer while the display is corrected for it (sheet §8);
+  noise bandwidth, ENBW = 1.0645*B3 with B3 = B6/sqrt(2) (derived: docs/physics.md), raised dB for
+  dB by the input attenuator, which sits before the mixer while the display is corrected for it
+  (common practice);
 * noise is a complex Gaussian process added to the lines' voltage; the detectors see the
   envelope of the sum, sampled ``M`` times per trace point (M independent samples: the envelope
   decorrelates in about 1/RBW, so M = dwell*RBW, capped);
 * burst-modulated lines (``Line.prf_hz`` set) depend on the detector and on the dwell per point;
 * the mixer compresses softly when the total input power minus the attenuation exceeds about
   -10 dBm, and the sweep is flagged as overloaded (the "10 dB more attenuation changes the reading
-  by less than 1 dB" check of sheet §8 then fails, as on a real analyzer).
+  by less than 1 dB" check (common practice) then fails, as on a real analyzer).
 
 Several lines inside one resolution bandwidth add in power (random relative phase averaged over
 the dwell), not as a coherent beat.
@@ -55,14 +57,15 @@ __all__ = [
 #: (power average), CISPR quasi-peak, CISPR average.
 DETECTORS = ("POS", "NEG", "SAMP", "AVER", "RMS", "QPE", "CAV")
 
-#: Thermal noise power density kT at 290 K, dBm/Hz (sheet §4: -173.98 dBm/Hz).
+#: Thermal noise power density kT at 290 K, dBm/Hz (derived:
+#: docs/physics.md; from Boltzmann's constant).
 KT_DBM_PER_HZ = 10.0 * math.log10(scipy.constants.k * 290.0 / 1e-3)
 
 #: Mixer level (input minus attenuation) where the gain is 1 dB compressed, dBm.
 MIXER_1DB_COMPRESSION_DBM = -10.0
 
 # Gaussian amplitude response H(df) = 2**(-(2*df/B6)**2): exactly -6.02 dB at df = B6/2.
-# Power response 4**(-(2*df/B6)**2); ENBW = sqrt(pi/(8 ln 2))*B6 = 1.0645*B3 (sheet §1.9).
+# Power response 4**(-(2*df/B6)**2); ENBW = sqrt(pi/(8 ln 2))*B6 = 1.0645*B3 (derived).
 _ENBW_PER_B6 = math.sqrt(math.pi / (4.0 * math.log(2.0))) / math.sqrt(2.0)
 _GAUSS_DB_AT_HALF_B6 = 20.0 * math.log10(2.0)
 # Lines weaker than this below the noise floor after the filter are left out (no visible effect).
@@ -150,14 +153,14 @@ class Sweep:
 
 
 def frequency_axis_hz(settings: ReceiverSettings) -> np.ndarray:
-    """Trace frequencies ``f_i = start + i*(stop - start)/(N - 1)``, Hz (sheet §8)."""
+    """Trace frequencies ``f_i = start + i*(stop - start)/(N - 1)``, Hz (common practice)."""
     return np.linspace(settings.start_hz, settings.stop_hz, settings.points)
 
 
 def enbw_hz(rbw_hz: float) -> float:
     """Equivalent noise bandwidth, Hz, of a Gaussian filter with 6 dB bandwidth ``rbw_hz``.
 
-    ENBW = 1.0645*B3 and B3 = B6/sqrt(2) (sheet §1.9): 90.33 kHz for B6 = 120 kHz.
+    ENBW = 1.0645*B3 and B3 = B6/sqrt(2) (derived: docs/physics.md): 90.33 kHz for B6 = 120 kHz.
     """
     return _ENBW_PER_B6 * rbw_hz
 
@@ -165,7 +168,8 @@ def enbw_hz(rbw_hz: float) -> float:
 def noise_floor_dbm(settings: ReceiverSettings) -> float:
     """Mean noise power the RMS detector displays, dBm.
 
-    kT(290 K) + NF + 10*log10(ENBW/Hz) + attenuation (sheet §4, §8, §1.9).
+    kT(290 K) + NF + 10*log10(ENBW/Hz) + attenuation (DANL, derived: docs/physics.md;
+    kT = -173.98 dBm/Hz from Boltzmann's constant; ENBW of the Gaussian RBW filter, derived).
     """
     return (KT_DBM_PER_HZ + settings.noise_figure_db + 10.0 * math.log10(enbw_hz(settings.rbw_hz))
             + settings.attenuation_db)
@@ -174,8 +178,9 @@ def noise_floor_dbm(settings: ReceiverSettings) -> float:
 def sweep_time_s(settings: ReceiverSettings, k: float = 2.5, min_s: float = 1e-3) -> float:
     """Automatic (shortest accurate) sweep time, s.
 
-    ``k*span/(RBW*min(RBW, VBW))`` with ``k`` about 2-3 for near-Gaussian filters (sheet §8: the
-    VBW < RBW form is marked there as from memory), never shorter than ``min_s``.
+    ``k*span/(RBW*min(RBW, VBW))`` with ``k`` about 2-3 for near-Gaussian filters (Witte, *Spectrum
+    and Network Measurements*; Engelson; the VBW < RBW form from memory), never shorter than
+    ``min_s``.
     """
     span_hz = settings.stop_hz - settings.start_hz
     vbw_hz = settings.rbw_hz if settings.vbw_hz is None else settings.vbw_hz
@@ -198,7 +203,7 @@ def samples_per_bucket(settings: ReceiverSettings) -> int:
 
 
 def mixer_level_dbm(lines: Sequence[Line], attenuation_db: float) -> float:
-    """Total on-level power of ``lines`` at the mixer, dBm (input minus attenuation, sheet §8).
+    """Total on-level power of ``lines`` at the mixer, dBm (input minus attenuation).
 
     There is no preselector: every line at the input reaches the mixer. -inf with no lines.
     """
@@ -320,14 +325,15 @@ def _burst_detector_factor(detector: str, duty: np.ndarray, periods: np.ndarray,
         return sampled_on
     if detector == "RMS":  # power average: duty * P_on over a long dwell
         return np.where(covered, duty, sampled_on)
-    # AVER: linear envelope average, level + 20*log10(duty) over a long dwell (sheet §1.5)
+    # AVER: linear envelope average, level + 20*log10(duty) over a long dwell
+    # (AVG = peak + 20 log10(duty): derived; CISPR 16-1-1 average detector)
     return np.where(covered, duty * duty, sampled_on)
 
 
 def _cispr_offsets_db(lines: Sequence[Line], detector: str) -> np.ndarray:
     """Quasi-peak or CISPR-average reading of each line relative to its peak, dB (0 for CW).
 
-    Above 1 GHz CISPR defines no quasi-peak (sheet §1.1, band E); the peak reading stands in.
+    Above 1 GHz CISPR defines no quasi-peak (CISPR 16-1-1, band E); the peak reading stands in.
     """
     # imported here: the detector models load scipy's ODE solvers, needed only by QP/CAV sweeps
     from bench.sim.detectors import reading_offsets_db
@@ -357,10 +363,11 @@ def _detect(signal_mw: np.ndarray, noise_mw: float, detector: str, m: int,
         reading = power[:, 0]
     elif detector in ("RMS", "QPE"):
         # QPE on noise: power mean, between the envelope average and the peak (model choice;
-        # only the ordering Peak >= QP >= Average of sheet §1.6 is relied on).
+        # only the ordering Peak >= QP >= Average is relied on: CISPR 16-1-1 detector
+        # definitions; common practice).
         reading = power.mean(axis=1)
-    elif detector == "AVER":  # log (video) average: noise reads 2.51 dB below RMS (sheet §8)
+    elif detector == "AVER":  # log (video) average: noise reads 2.51 dB below RMS (derived)
         return 10.0 * np.log10(np.maximum(power, tiny)).mean(axis=1)
-    else:  # CAV: linear envelope average; noise reads 1.05 dB below RMS (sheet §8)
+    else:  # CAV: linear envelope average; noise reads 1.05 dB below RMS (derived)
         reading = np.sqrt(power).mean(axis=1) ** 2
     return 10.0 * np.log10(np.maximum(reading, tiny))

@@ -17,14 +17,17 @@ in dBm (RMS), computed from the physics in :mod:`bench.physics`:
   *Approximate Calculation of Multiple Integrals*, S2:5-1), so a large loop blurs a hot spot as
   a real one does; an E stub reads E_z at its tip. No image in the board's own ground plane is
   added: an emitter's loop area already describes the loop formed by a trace and its return
-  current in the plane (sheet §6.3, trace over plane = trace + image), so an image would count
-  the return current twice.
+  current in the plane by the image method (trace over plane = trace + image; Balanis ch. 4;
+  Smith, IEEE Trans. EMC 1982), so an image would count the return current twice.
 * **Far field** (tool 0). The board lies on the table, its outline centre on the turntable axis,
   rotated by the turntable angle. The receive antenna stands at the site distance from that
   axis and at the mast height. Direct and ground-reflected rays come from the dipole and its
-  image in the site's ground plane (sheet §6.4), so any source orientation works. The component
+  image in the site's ground plane (image method over a
+  conducting ground plane: Balanis ch. 4; Smith, IEEE Trans. EMC 1982), so any source orientation
+  works. The component
   along the receive element (y for horizontal, z for vertical polarization) becomes a voltage
-  through the antenna factor from the antenna gain (sheet §4), then the cable loss and preamp.
+  through the antenna factor from the antenna gain (derived:
+  docs/physics.md), then the cable loss and preamp.
 * **Ambient** carriers have a given field strength at the antenna, do not depend on the board,
   the turntable or the mast, and are present with the board off. In near-field mode they reach
   the probe as a plane wave (H = E/eta0), fully aligned with the probe: a worst case, and far
@@ -306,7 +309,8 @@ class World:
         site = self._board.site
         out = []
         for a in self._ambient_in(f_lo_hz, f_hi_hz):
-            # dBuV/m (RMS) -> dBuV at the analyzer -> dBm in 50 ohm (sheet §3.2, §4)
+            # dBuV/m (RMS) -> dBuV at the analyzer -> dBm in 50 ohm (derived, docs/physics.md:
+            # 106.99 = 10 log10(50) + 90)
             level = dbuv_to_dbm(a.field_dbuv_per_m + float(self._chain_db(np.array([a.frequency_hz]))[0]))
             if a.polarization not in ("both", polarization):
                 level -= site.cross_polar_rejection_db
