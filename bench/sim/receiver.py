@@ -37,6 +37,8 @@ from bench.sim.state import Line
 
 __all__ = [
     "DETECTORS",
+    "IMPULSE_PER_B6",
+    "burst_peak_factor",
     "KT_DBM_PER_HZ",
     "MIXER_1DB_COMPRESSION_DBM",
     "ReceiverSettings",
@@ -285,7 +287,42 @@ def _signal_power_mw(lines: Sequence[Line], settings: ReceiverSettings, freq_hz:
     x = 2.0 * (freq_hz[bin_idx] - line_freq_hz[line_idx]) / settings.rbw_hz
     weight = 10.0 ** (line_dbm[line_idx] / 10.0) * np.power(4.0, -x * x)
     weight *= _burst_factor(lines, line_idx, settings.detector, dwell_s, rng)
+    weight *= _rise_factor(lines, settings.rbw_hz, settings.detector)[line_idx]
     return np.bincount(bin_idx, weights=weight, minlength=freq_hz.size)
+
+
+#: Impulse bandwidth of a Gaussian filter over its 6 dB bandwidth: sqrt(pi / (4 ln 2)) = 1.0645
+#: (derived in docs/physics.md; CISPR 16-1-1 relates B_imp and B6 the same way for its filters).
+IMPULSE_PER_B6 = math.sqrt(math.pi / (4.0 * math.log(2.0)))
+
+
+def burst_peak_factor(on_time_s: float, rbw_hz: float) -> float:
+    """Peak of the IF envelope of a rectangular RF burst over that of a CW line of the same level.
+
+    A Gaussian IF filter of 6 dB bandwidth ``rbw_hz`` has the impulse response
+    h(t) = B_imp exp(-pi B_imp^2 t^2) (unit DC gain, peak B_imp), so a burst of length tau
+    reaches at most erf(sqrt(pi) B_imp tau / 2) of the CW envelope, tending to B_imp * tau for
+    short bursts: 20 log10(tau B_imp) dB (derived; the same limit as CISPR 16-1-1 states for
+    impulses).
+    """
+    b_imp = IMPULSE_PER_B6 * rbw_hz
+    return math.erf(math.sqrt(math.pi) * b_imp * on_time_s / 2.0)
+
+
+def _rise_factor(lines: Sequence[Line], rbw_hz: float, detector: str) -> np.ndarray:
+    """Power factor per line for envelope-peak detectors: bursts shorter than the filter's rise.
+
+    Peak, sample and negative peak read the envelope's value; the linear and power averages
+    keep the burst's area (a filter with a positive impulse response preserves it), and the
+    CISPR detectors are modelled from the envelope at their own bandwidth.
+    """
+    out = np.ones(len(lines))
+    if detector not in ("POS", "SAMP", "NEG"):
+        return out
+    for i, line in enumerate(lines):
+        if line.prf_hz is not None and line.duty < 1.0:
+            out[i] = burst_peak_factor(line.duty / line.prf_hz, rbw_hz) ** 2
+    return out
 
 
 def _burst_factor(lines: Sequence[Line], line_idx: np.ndarray, detector: str, dwell_s: float,
