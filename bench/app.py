@@ -57,6 +57,8 @@ def _load_bench(options: BenchOptions, stack: ExitStack | None):
         raise ConfigError("--fault injects faults into the simulated bench: use it with --sim")
     if options.board is not None and not options.sim:
         raise ConfigError("--board chooses the simulated board: use it with --sim")
+    if options.seed is not None and not options.sim:
+        raise ConfigError("--seed seeds the simulated bench: use it with --sim")
     bench_path = options.bench_path
     if bench_path is None:
         if not options.sim:
@@ -170,6 +172,8 @@ def run_sequence(session, *, out_root: Path, plots: bool = True, unattended: boo
     """
     from bench.runner import execute_new_run
 
+    if Path(out_root).exists() and not Path(out_root).is_dir():
+        raise ConfigError(f"expected a folder for the run folders, found a file: {out_root}", key="--out")
     folder = execute_new_run(session, out_root=out_root, unattended=unattended)
     if plots:
         report(folder)

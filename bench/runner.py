@@ -263,6 +263,8 @@ def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Pat
     if manifest.get("state") == "complete":
         raise ConfigError(f"{folder}: this run is already complete; nothing to resume (to write its "
                           f"report again: emission-bench report {folder})")
+    if not isinstance(manifest.get("sequence"), dict) or "path" not in manifest["sequence"]:
+        raise ConfigError(f"{folder}: the manifest names no sequence file: this folder cannot be resumed")
     seq_path = Path(manifest["sequence"]["path"])
     if not seq_path.is_file() or _sha256(seq_path) != manifest["sequence"]["sha256"]:
         raise ConfigError(f"{seq_path}: the sequence file changed or is missing since the run started; "

@@ -90,7 +90,7 @@ class _Caps(_Strict):
     freq_max: str
     rbw_min: str
     rbw_max: str
-    sweep_time_k: float = Field(gt=0)
+    sweep_time_k: float = Field(gt=0, le=100, allow_inf_nan=False)  # 2-3 for analog filters
     min_sweep_time: str
     max_sweep_time: str = "4000 s"
     transfer_rate: str
@@ -442,7 +442,7 @@ def _profile(model: _ProfileModel, origin: str, key_lines: dict) -> AnalyzerProf
                               key=key) from None
 
     io = TransportSettings(
-        timeout_s=q(model.io.timeout, "time", "io.timeout"),
+        timeout_s=_positive(q(model.io.timeout, "time", "io.timeout"), origin, key_lines, "io.timeout", "s"),
         open_timeout_s=q(model.io.open_timeout, "time", "io.open_timeout"),
         read_termination=model.io.read_termination,
         write_termination=model.io.write_termination,
@@ -457,7 +457,8 @@ def _profile(model: _ProfileModel, origin: str, key_lines: dict) -> AnalyzerProf
         sweep_time_k=caps.sweep_time_k,
         min_sweep_time_s=q(caps.min_sweep_time, "time", "capabilities.min_sweep_time"),
         max_sweep_time_s=q(caps.max_sweep_time, "time", "capabilities.max_sweep_time"),
-        transfer_bytes_per_s=q(caps.transfer_rate, "data_rate", "capabilities.transfer_rate"),
+        transfer_bytes_per_s=_positive(q(caps.transfer_rate, "data_rate", "capabilities.transfer_rate"),
+                                       origin, key_lines, "capabilities.transfer_rate", "B/s"),
         command_overhead_s=q(caps.command_overhead, "time", "capabilities.command_overhead"),
         max_attenuation_db=q(caps.max_attenuation, "db", "capabilities.max_attenuation"),
         damage_level_dbm=q(caps.damage_level, "dbm", "capabilities.damage_level"),
@@ -488,3 +489,11 @@ def _completion(c: _Completion) -> Completion:
         "wait_factor": c.wait_factor, "wait_margin_s": c.wait_margin,
     }.items() if v is not None}
     return Completion(method=c.method, start=c.start, **given)
+
+
+def _positive(value: float, origin: str, key_lines: dict, key: str, unit: str) -> float:
+    """A rate or time that must be above zero (a zero transfer rate would divide by zero)."""
+    if not value > 0:
+        raise ConfigError(f"expected a value above 0 {unit}, found {value:g} {unit}", file=origin,
+                          line=key_lines.get(tuple(key.split("."))), key=key)
+    return value

@@ -59,3 +59,23 @@ def test_a_pose_outside_the_mast_names_the_sequence_line(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     line = next(n for n, t in enumerate(seq.read_text().splitlines(), start=1) if t.startswith("kind = \"prescan\"")) - 1
     assert len(err) == 1 and f"{seq}:{line} " in err[0] and "expected antenna height within [1 m, 4 m]" in err[0]
+
+
+def test_command_line_mistakes_found_by_the_census(tmp_path, capsys):
+    quick = str(DEMO / "demo-quick.toml")
+    afile = tmp_path / "afile"
+    afile.write_text("", encoding="utf-8")
+    cases = [
+        (["run", quick, "--sim", "--no-plots", "--out", str(afile)], "--out: expected a folder"),
+        (["check", quick, "--bench", str(DEMO / "demo-bench.toml"), "--seed", "3"], "use it with --sim"),
+    ]
+    for args, fragment in cases:
+        assert main(args) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and fragment in err[0], err
+    # a run folder whose manifest names no sequence cannot be resumed: one line, not a KeyError
+    folder = tmp_path / "damaged"
+    folder.mkdir()
+    (folder / "manifest.toml").write_text('state = "interrupted"\n', encoding="utf-8")
+    assert main(["resume", str(folder), "--no-plots"]) == 2
+    assert "names no sequence file" in capsys.readouterr().err

@@ -27,6 +27,7 @@ import math
 from typing import Annotated, Literal, Optional
 
 import numpy as np
+import pydantic
 from pydantic import Field, StrictStr
 
 from bench.errors import PlanError
@@ -41,6 +42,7 @@ from bench.planning import (
     sweep_time_s,
 )
 from bench.steps.base import StepKind, where
+from bench.tomlsource import cross_check_error
 from bench.steps.fields import (
     Detector,
     Frequency,
@@ -69,6 +71,13 @@ class AngleSearch(StrictModel):
     half_width_deg: NonNegativeAngle = Field(alias="half_width")
     step_deg: PositiveAngle = Field(alias="step")
 
+    @pydantic.model_validator(mode="after")
+    def _bounded(self) -> "AngleSearch":
+        problems = _search_size_problem(self.half_width_deg, self.step_deg, lambda v: f"{v:g} deg")
+        if problems:
+            raise cross_check_error(problems)
+        return self
+
     def offsets(self) -> tuple[float, ...]:
         """Offsets from the centre, deg, symmetric, including 0."""
         return _offsets(self.half_width_deg, self.step_deg)
@@ -80,9 +89,27 @@ class HeightSearch(StrictModel):
     half_width_m: NonNegativeLength = Field(alias="half_width")
     step_m: PositiveLength = Field(alias="step")
 
+    @pydantic.model_validator(mode="after")
+    def _bounded(self) -> "HeightSearch":
+        problems = _search_size_problem(self.half_width_m, self.step_m, lambda v: f"{v:g} m")
+        if problems:
+            raise cross_check_error(problems)
+        return self
+
     def offsets(self) -> tuple[float, ...]:
         """Offsets from the centre, m, symmetric, including 0."""
         return _offsets(self.half_width_m, self.step_m)
+
+
+#: Most search positions either side of a suspect: a typo ("1e300 deg") must not plan millions.
+MAX_SEARCH_OFFSETS = 1000
+
+
+def _search_size_problem(half_width: float, step: float, show) -> list:
+    if half_width / step > MAX_SEARCH_OFFSETS:
+        return [(("step",), f"expected at most {MAX_SEARCH_OFFSETS} positions either side, found "
+                            f"{show(half_width)} by {show(step)} (is the unit right?)")]
+    return []
 
 
 def _offsets(half_width: float, step: float) -> tuple[float, ...]:
@@ -103,6 +130,17 @@ class FinalStep(StrictModel):
     height_search: Optional[HeightSearch] = None
 
 
+
+
+#: Most search positions either side of a suspect: a typo ("1e300 deg") must not plan millions.
+MAX_SEARCH_OFFSETS = 1000
+
+
+def _search_size_problem(half_width: float, step: float, show) -> list:
+    if half_width / step > MAX_SEARCH_OFFSETS:
+        return [(("step",), f"expected at most {MAX_SEARCH_OFFSETS} positions either side, found "
+                            f"{show(half_width)} by {show(step)} (is the unit right?)")]
+    return []
 
 
 def _offsets(half_width: float, step: float) -> tuple[float, ...]:
