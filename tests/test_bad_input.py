@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sqlite3
 import subprocess
 import sys
 from importlib import resources
@@ -77,5 +78,6 @@ def test_command_line_mistakes_found_by_the_census(tmp_path, capsys):
     folder = tmp_path / "damaged"
     folder.mkdir()
     (folder / "manifest.toml").write_text('state = "interrupted"\n', encoding="utf-8")
+    sqlite3.connect(folder / "data.sqlite").close()  # an empty database beside it
     assert main(["resume", str(folder), "--no-plots"]) == 2
     assert "names no sequence file" in capsys.readouterr().err
