@@ -19,6 +19,7 @@ from bench.tomlsource import (
     check_schema,
     cross_check_error,
     format_value,
+    is_file,
     quantity,
     quantity_list,
     read_toml,
@@ -56,7 +57,7 @@ def _resolve_path(value: Any, info: pydantic.ValidationInfo) -> Path:
     context = info.context or {}
     base = Path(context.get("base_dir", "."))
     path = Path(value) if Path(value).is_absolute() else base / value
-    if context.get("check_files", False) and not path.is_file():
+    if context.get("check_files", False) and not is_file(path):
         raise bench_error(f"expected an existing file (relative to the bench file), found no "
                           f"file at {format_value(value)}")
     return path
@@ -127,7 +128,8 @@ class StageSection(_Model):
 
     address: Address
     profile: StrictStr = "gcode-cartesian"
-    baudrate: Optional[Annotated[StrictInt, Field(gt=0)]] = None
+    # from memory: the fastest common USB-serial bridges run at 12 Mbaud
+    baudrate: Optional[Annotated[StrictInt, Field(gt=0, le=12_000_000)]] = None
     limits: StageTravel
     safe_z_m: quantity("length") = Field(alias="safe_z")
     max_feed_m_per_s: quantity("speed", positive=True) = Field(alias="max_feed")
@@ -197,7 +199,9 @@ class Probe(_Model):
     """``[probes.<name>]``: near-field probe kind, tool number and factor table path."""
 
     kind: Literal["h-loop", "e-probe"]
-    tool: Annotated[StrictInt, Field(ge=0)]
+    # tool 0 is no probe: far-field steps park the stage there (T0), so no probe may use it;
+    # a T word has at most four digits on the controllers we know (common practice)
+    tool: Annotated[StrictInt, Field(ge=1, le=9999)]
     factor: FilePath
 
 

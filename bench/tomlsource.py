@@ -30,6 +30,7 @@ __all__ = [
     "KeyPath",
     "TomlSource",
     "read_toml",
+    "is_file",
     "format_key_path",
     "format_value",
     "suggest",
@@ -110,6 +111,18 @@ def read_toml(path: str | Path) -> TomlSource:
     except tomllib.TOMLDecodeError as exc:
         raise _with_all(_syntax_error(file, text, str(exc))) from exc
     return TomlSource(file=file, text=text, data=data, lines=_KeyLineScanner(text).scan())
+
+
+def is_file(path: str | Path) -> bool:
+    """True when ``path`` names an existing regular file.
+
+    A path the system cannot even look up (a name longer than the file system allows, a loop of
+    symbolic links) is no file either, instead of an ``OSError`` escaping from ``Path.is_file``.
+    """
+    try:
+        return Path(path).is_file()
+    except (OSError, ValueError):  # ValueError: a NUL byte in the path
+        return False
 
 
 def _os_reason(exc: Exception) -> str:
