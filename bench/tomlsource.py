@@ -672,7 +672,7 @@ def _length_message(kind: str, ctx: dict, value: Any) -> str:
 
 
 def quantity(dimension: str, *, positive: bool = False, non_negative: bool = False,
-             ) -> typing.Any:
+             at_most: str | None = None) -> typing.Any:
     """A model field type: a quantity string parsed by :func:`bench.units.parse` to SI.
 
     Parameters
@@ -681,9 +681,11 @@ def quantity(dimension: str, *, positive: bool = False, non_negative: bool = Fal
         A key of :data:`bench.units.DIMENSIONS` (``"frequency"``, ``"length"``, ...).
     positive, non_negative : bool
         Refuse zero/negative (or negative) values, naming the text as written.
+    at_most : str, optional
+        The largest value, written as a quantity (``"1 m/s"``): a typo guard, named as written.
     """
     return typing.Annotated[float, pydantic.BeforeValidator(
-        _QuantityParser(dimension, positive, non_negative))]
+        _QuantityParser(dimension, positive, non_negative, at_most))]
 
 
 def quantity_list(dimension: str, count: int, **kwargs: bool) -> typing.Any:
@@ -702,6 +704,7 @@ class _QuantityParser:
     dimension: str
     positive: bool = False
     non_negative: bool = False
+    at_most: str | None = None
 
     def __call__(self, value: Any) -> float:
         from bench import units  # leaf module; imported here to keep this module light
@@ -716,6 +719,10 @@ class _QuantityParser:
         if (self.positive and result <= 0) or (self.non_negative and result < 0):
             sign = "positive" if self.positive else "non-negative"
             raise bench_error(f"expected a {sign} {self.dimension}, found {format_value(value)}")
+        if self.at_most is not None and result > units.parse(self.at_most, self.dimension):
+            article = "an" if self.dimension[0] in "aeiou" else "a"
+            raise bench_error(f"expected {article} {self.dimension} of at most {self.at_most}, "
+                              f"found {format_value(value)}")
         return result
 
 

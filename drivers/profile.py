@@ -48,6 +48,7 @@ __all__ = [
     "pattern_with",
     "template_with",
     "duration",
+    "AsciiWord",
     "Terminator",
     "MAX_DURATION_S",
 ]
@@ -289,8 +290,17 @@ MAX_DURATION_S = 86_400.0
 
 def duration(*, positive: bool = True) -> Any:
     """A time quantity in seconds, > 0 (or >= 0 with ``positive=False``), at most one day."""
-    kind = quantity("time", positive=True) if positive else quantity("time", non_negative=True)
-    return Annotated[kind, Field(le=MAX_DURATION_S)]
+    return quantity("time", positive=positive, non_negative=not positive, at_most=f"{MAX_DURATION_S:g} s")
+
+
+def _ascii_word(value: Any) -> Any:
+    if isinstance(value, str) and not _printable_ascii(value):
+        raise bench_error(f"expected printable ASCII characters (it is sent in a command), found {format_value(value)}")
+    return value
+
+
+#: A code sent inside a command or compared with a reply: printable ASCII, not empty.
+AsciiWord = Annotated[str, pydantic.BeforeValidator(_ascii_word), Field(min_length=1, strict=True)]
 
 
 def template_with(*fields: str) -> Any:

@@ -104,7 +104,7 @@ class StageRotary(ProfileTable):
 
     axis: Literal["A", "B", "C"] = "A"
     feed_deg_per_s: quantity("angular_speed", positive=True) = Field(90.0, alias="feed")
-    tolerance_deg: Annotated[quantity("angle", positive=True), Field(le=360.0)] = Field(0.1, alias="tolerance")
+    tolerance_deg: quantity("angle", positive=True, at_most="360 deg") = Field(0.1, alias="tolerance")
 
 
 class StageTiming(ProfileTable):
@@ -116,7 +116,7 @@ class StageTiming(ProfileTable):
     home_timeout_s: duration() = Field(180.0, alias="home_timeout")
     tool_change_timeout_s: duration() = Field(60.0, alias="tool_change_timeout")
     accel_m_per_s2: quantity("acceleration", positive=True) = Field(0.1, alias="accel")
-    move_time_factor: Annotated[StrictFloat, Field(ge=1.0)] = 1.5
+    move_time_factor: Annotated[StrictFloat, Field(ge=1.0, le=100.0)] = 1.5  # more would wait for ever
     move_time_margin_s: duration(positive=False) = Field(10.0, alias="move_time_margin")
 
 

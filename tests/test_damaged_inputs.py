@@ -124,3 +124,20 @@ def test_a_transducer_value_beyond_200_db_is_refused(tmp_path):
     path.write_text("\n".join(text) + "\n", encoding="utf-8")
     with pytest.raises(ConfigError, match=r"expected values within \+-200 dB, found 1e\+308 dB"):
         load_table(path, role="preamp_gain")
+
+
+@pytest.mark.parametrize(("old", "new", "fragment"), [
+    ('distance = "3 m"', 'distance = "1e300 m"', 'distance: expected a length of at most 1000 m, found "1e300 m"'),
+    ('bandwidth = "120 kHz"', 'bandwidth = "1e300 kHz"',
+     'bandwidth: expected a frequency of at most 100 MHz, found "1e300 kHz"'),
+])
+def test_a_limit_file_with_a_huge_distance_or_bandwidth_is_refused(tmp_path, old, new, fragment):
+    from bench.analysis.limits import load_limit
+
+    text = (resources.files("bench") / "data" / "limits" / "cispr32-class-b-3m.toml").read_text(encoding="utf-8")
+    assert old in text
+    path = tmp_path / "mine.toml"
+    path.write_text(text.replace(old, new, 1), encoding="utf-8")
+    with pytest.raises(ConfigError) as info:
+        load_limit(path)
+    assert fragment in str(info.value) and "\n" not in str(info.value)
