@@ -30,10 +30,12 @@ import argparse
 import contextlib
 import copy
 import io
+import json
 import math
 import os
 import random
 import re
+import select
 import shutil
 import subprocess
 import sys
@@ -164,6 +166,8 @@ class Outcome:
         Files written by a command that succeeded (an export, a report) are its output; files
         left by a command that failed are counted.
         """
+        if self.traceback.startswith(("Hang:", "Crash:")):
+            return "hang or crash"
         if self.traceback:
             return "traceback"
         if self.code == 0:
@@ -342,6 +346,8 @@ def key_cases(name: str, argv: list[str], text: str) -> list[Case]:
     for path, value in _leaves(doc):
         where = f"{name}: {_dotted(path)}"
         for what, new in _value_mutations(value):
+            if new == value and type(new) is type(value):
+                continue  # no change (a unit already in lower case)
             cases.append(Case(group, f"{where}: {what} ({_short(new)})", argv, _rewrite(name, _set(path, new))))
         if isinstance(path[-1], str):
             cases.append(Case(group, f"{where}: misspelt key {_misspelt(path[-1])!r}", argv,
@@ -403,8 +409,10 @@ def file_cases(base: Path, per_file: int, rng: random.Random) -> list[Case]:
     cases = []
     for name, argv in _targets().items():
         keyed = key_cases(name, argv, (base / name).read_text(encoding="utf-8"))
-        rng.shuffle(keyed)
-        cases += keyed[:per_file] + byte_cases(name, argv, rng)
+        if per_file:
+            rng.shuffle(keyed)
+            keyed = keyed[:per_file]
+        cases += keyed + byte_cases(name, argv, rng)
     return cases
 
 
@@ -568,6 +576,8 @@ def cli_cases() -> list[Case]:
         ["sim", "--board", "tables"], ["sim", "--seed", "-5"], ["info", "extra"], ["instruments"],
         ["instruments", "--bench", "missing.toml"], ["check", seq, "--sim", "--realtime", "--seed"],
         ["check", "", "--sim"], ["check", "-", "--sim"], ["check", "seq-quick.toml/", "--sim"],
+        ["check", "x" * 300 + ".toml", "--sim"], ["report", "y" * 300], ["export", "z" * 300, "--csv", "out"],
+        ["check", seq, "--sim", "--board", "b" * 300 + ".toml"], ["check", seq, "--bench", "c" * 300 + ".toml"],
     ]
     return [Case("command line", "bench " + " ".join(a or ["(no arguments)"]), a) for a in lines]
 
@@ -577,6 +587,10 @@ def cli_cases() -> list[Case]:
 _LOG = re.compile(r"^\d{4}-\d\d-\d\d \d\d:\d\d:\d\d,\d+ (DEBUG|INFO|WARNING|ERROR|CRITICAL) ")
 #: Bound on a ``bench sim`` case (a valid one serves until stopped).
 SIM_CASE_S = 8.0
+#: Address space of the worker that runs the cases, bytes: a bad input must not need more.
+MEMORY_LIMIT_BYTES = 3 << 30
+#: Bound on one case in the worker, s.
+CASE_TIMEOUT_S = 60.0
 
 
 def _snapshot(folder: Path) -> dict:
@@ -625,23 +639,83 @@ def _as_process(argv: list[str], cwd: Path, timeout_s: float = 120.0) -> tuple[i
     return code, out, err, tb
 
 
-def run_case(case: Case, base: Path, folder: Path, index: int, *, process: bool = False) -> Outcome:
-    """Copy the base, apply the case's change, run its command, look at what it did."""
+class Worker:
+    """A child process that runs cases with :func:`bench.cli.main` one after another.
+
+    It imports the package once (cases take milliseconds, not the 1-2 s of a new interpreter),
+    lives under a memory limit (``RLIMIT_AS``), and is replaced when a case kills it or takes
+    longer than ``timeout_s``: that case is then reported as a crash or a hang.
+    """
+
+    def __init__(self, memory_bytes: int = MEMORY_LIMIT_BYTES, timeout_s: float = CASE_TIMEOUT_S) -> None:
+        self.memory_bytes, self.timeout_s, self.proc = memory_bytes, timeout_s, None
+
+    def _start(self) -> None:
+        self.proc = subprocess.Popen([sys.executable, __file__, "--worker", str(self.memory_bytes)],
+                                     stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                                     text=True, bufsize=1)
+
+    def run(self, argv: list[str], cwd: Path) -> tuple[int, str, str, str]:
+        """(exit code, stdout, stderr, traceback) of one case; a dead or stuck worker is replaced."""
+        if self.proc is None or self.proc.poll() is not None:
+            self._start()
+        self.proc.stdin.write(json.dumps({"argv": argv, "cwd": str(cwd)}) + "\n")
+        self.proc.stdin.flush()
+        ready = select.select([self.proc.stdout], [], [], self.timeout_s)[0]
+        line = self.proc.stdout.readline() if ready else ""
+        if line.startswith(_RESULT):
+            r = json.loads(line[len(_RESULT):])
+            return r["code"], r["out"], r["err"], r["tb"]
+        self.stop()
+        if not ready:
+            return -1, "", "", f"Hang: no answer within {self.timeout_s:g} s"
+        return -1, "", "", f"Crash: the process died (memory limit {self.memory_bytes >> 30} GB?)"
+
+    def stop(self) -> None:
+        if self.proc is not None:
+            self.proc.kill()
+            self.proc.wait()
+            self.proc = None
+
+
+_RESULT = "@@census-result "
+
+
+def worker_loop(memory_bytes: int) -> None:
+    """The worker side: read a case per line, run it in this process, print its result."""
+    import resource
+
+    resource.setrlimit(resource.RLIMIT_AS, (memory_bytes, memory_bytes))
+    out = sys.stdout
+    for line in sys.stdin:
+        case = json.loads(line)
+        code, stdout, stderr, tb = _in_process(case["argv"], Path(case["cwd"]))
+        out.write(_RESULT + json.dumps({"code": code, "out": stdout[-20000:], "err": stderr[-20000:],
+                                        "tb": tb[-5000:]}) + "\n")
+        out.flush()
+
+
+def run_case(case: Case, base: Path, folder: Path, index: int, worker: Worker | None = None) -> Outcome:
+    """Copy the base, apply the case's change, run its command, look at what it did.
+
+    With a ``worker`` the command runs there; without, as a real ``bench`` process.
+    """
     work = folder / f"case-{index:04d}"
     shutil.copytree(base, work, symlinks=True)
     if case.prepare is not None:
         case.prepare(work)
     before = _snapshot(work)
     t0 = time.perf_counter()
-    if process or case.argv[:1] == ["sim"]:
+    if worker is None or case.argv[:1] == ["sim"]:
         code, out, err, tb = _as_process(case.argv, work, SIM_CASE_S if case.argv[:1] == ["sim"] else 120.0)
     else:
-        code, out, err, tb = _in_process(case.argv, work)
+        code, out, err, tb = worker.run(case.argv, work)
     seconds = time.perf_counter() - t0
     after = _snapshot(work)
     written = sorted(k for k in after if before.get(k) != after[k]) + sorted(f"{k} (deleted)" for k in before
                                                                               if k not in after)
-    lines = [x for x in err.splitlines() if x.strip() and not _LOG.match(x) and not x.startswith("Safety:")]
+    lines = [x for x in err.splitlines() if x.strip() and not _LOG.match(x)
+             and not x.startswith(("Safety:", "simulated bench:"))]
     return Outcome(case, code, lines, len(out.splitlines()), tb.strip().splitlines()[-1] if tb else "",
                    written, seconds)
 
@@ -649,7 +723,39 @@ def run_case(case: Case, base: Path, folder: Path, index: int, *, process: bool 
 # ------------------------------------------------------------------ judging and printing
 
 #: Mutations that give a valid input (exit 0 is right), by a pattern of the case text, and why.
-VALID = ()
+VALID = (
+    (r": lower-case unit", "units are case-insensitive (docs/sequence-format.md)"),
+    (r": key missing$", "an optional key: its documented default applies"),
+    (r"\b(description|name|title|notes|source|clause)(\.\d+)?: (empty|non-ASCII|long) string",
+     "free text for people"),
+    (r"\.name: path with \.\./|\b(description|title|notes|source|clause): path with \.\./", "free text for people"),
+    (r": path with \.\./", "not a path here (a command, a pattern or a code): no file is opened"),
+    (r": long string", "no length limit on commands and patterns: harmless"),
+    (r": huge file \(4 MB of comments\)", "comments only: a valid file"),
+    (r"tables/.*: byte-order mark", "a spreadsheet's byte-order mark is accepted on purpose (transducers.py)"),
+    (r"tables/.*: no comment lines", "the comment lines are optional: the bench file gives the role"),
+    (r"handshake\.(busy|errors): (scalar for a list|empty list|extra element)",
+     "one pattern without brackets (documented), none, or one twice"),
+    (r"transducers\.cables: (empty list|extra element)", "no cable, or the same cable twice in series"),
+    (r"(outline|polygon): extra element", "a repeated corner"),
+    (r"detectors: extra element", "a detector read twice"),
+    (r": negative \('-0 ", "-0 is 0"),
+    (r"azimuths\.to: zero", "a single azimuth, 0 deg"),
+    (r"decimals: zero", "whole numbers on the wire"),
+    (r"(settle|time_margin|move_time_margin): zero", "no extra wait"),
+    (r"azimuth_search\.half_width: zero", "no azimuth search"),
+    (r"margin: (zero|negative)", "suspects only above the limit by that much (docs: 'within this margin')"),
+    (r"limit\.toml: lines\..*level: (zero|negative)", "limit levels of -100 to 200 dB are accepted by design"),
+    (r"analyzer\.noise_figure: zero", "an ideal receiver"),
+    (r"(stage|positioner)\.toml: .*\b(speed|feed|accel)\b.*: huge", "sets a reply deadline only (it shrinks to the margin)"),
+    (r"\b(ok|banner|reply|polarization_reply)\b.*: non-ASCII string",
+     "a pattern that never matches shows at the first command (a reply timeout)"),
+    (r"seq-all\.toml: truncated at 70 %", "the cut falls between two steps: a shorter, complete sequence"),
+    (r"run folder, (manifest (empty|garbage|truncated)|tables folder missing|state 'running', sequence moved): "
+     r"bench (export|report|compare)", "export, report and compare read the data only (salvage)"),
+    (r"bench check seq-quick\.toml/ --sim", "pathlib reads 'seq-quick.toml/' as the file"),
+    (r"--seed 1180591620717411303424", "any whole number >= 0 is a seed"),
+)
 
 
 def judged_valid(case: Case) -> str:
@@ -671,8 +777,8 @@ def is_defect(o: Outcome) -> bool:
 
 
 def print_counts(outcomes: list[Outcome]) -> None:
-    kinds = ["good", "exit 0 (valid)", "exit 0", "one line, exit 1", "traceback", "multi-line", "wrote files",
-             "other exit"]
+    kinds = ["good", "exit 0 (valid)", "exit 0", "one line, exit 1", "traceback", "hang or crash", "multi-line",
+             "wrote files", "other exit"]
     print(f"{'input':14s} {'cases':>5s} " + " ".join(f"{k:>16s}" for k in kinds))
     for group in sorted({o.case.group for o in outcomes}) + ["all"]:
         os_ = [o for o in outcomes if group in ("all", o.case.group)]
@@ -683,29 +789,43 @@ def print_counts(outcomes: list[Outcome]) -> None:
 def _bucket(o: Outcome) -> str:
     if o.kind == "exit 0":
         return "exit 0 (valid)" if judged_valid(o.case) else "exit 0"
-    return o.kind if o.kind in ("good", "traceback", "multi-line", "wrote files", "one line, exit 1") else "other exit"
+    known = ("good", "traceback", "hang or crash", "multi-line", "wrote files", "one line, exit 1")
+    return o.kind if o.kind in known else "other exit"
 
 
-def print_defects(outcomes: list[Outcome]) -> None:
+def print_defects(outcomes: list[Outcome], verbose: bool = False) -> None:
+    """Tracebacks, hangs, stray files and odd exits one by one; accepted bad values by group."""
     bad = [o for o in outcomes if is_defect(o)]
     print(f"suspected defects: {len(bad)} (reproduce in a copy of the census base folder: "
           "change the file as said, then run the command)")
     for o in sorted(bad, key=lambda o: (o.kind, o.case.group, o.case.what)):
+        if o.kind == "exit 0" and not verbose:
+            continue
         said = o.traceback or (" | ".join(o.stderr_lines)[:220] if o.stderr_lines else f"stdout {o.stdout_lines} lines")
         extra = f"; wrote {', '.join(o.written[:4])}" if o.written else ""
         print(f"  [{o.kind}] {o.case.what}  ->  bench {' '.join(o.case.argv)}  (exit {o.code}: {said}{extra})")
-    accepted = [o for o in outcomes if o.kind == "exit 0" and judged_valid(o.case)]
-    if accepted:
-        print(f"accepted and judged valid: {len(accepted)}")
-        for o in accepted:
-            print(f"  {o.case.what}: {judged_valid(o.case)}")
+    groups: dict = {}
+    for o in bad:
+        if o.kind == "exit 0" and o.case.group == "command line":
+            groups.setdefault(("command line", "accepted"), []).append(o.case.what)
+        elif o.kind == "exit 0":
+            file, _, rest = o.case.what.partition(": ")
+            key, _, what = rest.rpartition(": ")
+            groups.setdefault((file, re.sub(r" \(.*", "", what) or rest), []).append(key or rest)
+    print(f"  [exit 0] bad values accepted, by file and kind of change ({sum(map(len, groups.values()))}):")
+    for (file, what), keys in sorted(groups.items(), key=lambda kv: (kv[0][0], -len(kv[1]))):
+        print(f"    {file}: {what}: {len(keys)} ({', '.join(keys[:4])}{', ...' if len(keys) > 4 else ''})")
+    valid = Counter(judged_valid(o.case) for o in outcomes if o.kind == "exit 0" and judged_valid(o.case))
+    print(f"accepted and judged valid: {sum(valid.values())}")
+    for reason, n in valid.most_common():
+        print(f"  {n:4d}  {reason}")
 
 
-def check_base(base: Path, folder: Path) -> list[str]:
+def check_base(base: Path, folder: Path, worker: Worker) -> list[str]:
     """The base passes every target command (else the census would measure nothing)."""
     problems = []
     for name, argv in _targets().items():
-        o = run_case(Case("base", f"base for {name}", argv), base, folder, 9999)
+        o = run_case(Case("base", f"base for {name}", argv), base, folder, 9999, worker)
         shutil.rmtree(folder / "case-9999")
         if o.code != 0:
             problems.append(f"{name}: bench {' '.join(argv)} -> exit {o.code}: {o.stderr_lines or o.traceback}")
@@ -718,7 +838,7 @@ def agreement(cases: list[Case], outcomes: list[Outcome], base: Path, folder: Pa
     picks = rng.sample(range(len(cases)), min(n, len(cases)))
     same = 0
     for j, i in enumerate(picks):
-        o = run_case(cases[i], base, folder, 90000 + j, process=True)
+        o = run_case(cases[i], base, folder, 90000 + j)
         shutil.rmtree(folder / f"case-{90000 + j:04d}")
         same += o.kind == outcomes[i].kind and o.code == outcomes[i].code
     return f"{same}/{len(picks)} sampled cases gave the same exit code and kind as real processes"
@@ -726,10 +846,12 @@ def agreement(cases: list[Case], outcomes: list[Outcome], base: Path, folder: Pa
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--per-file", type=int, default=60, help="key mutations per file (default 60)")
+    parser.add_argument("--per-file", type=int, default=0,
+                        help="key mutations per file, sampled (default 0: all of them)")
     parser.add_argument("--seed", type=int, default=5, help="seed of the sampling (default 5)")
     parser.add_argument("--processes", type=int, default=12, help="cases also run as real processes")
     parser.add_argument("--keep", type=Path, help="keep the case folders under this folder")
+    parser.add_argument("--verbose", action="store_true", help="list every accepted bad value")
     args = parser.parse_args(argv)
     for line in machine_lines():
         print(line)
@@ -738,25 +860,32 @@ def main(argv: list[str] | None = None) -> int:
     with work_folder("census-", args.keep) as folder:
         base = build_base(folder)
         make_run(base)
-        problems = check_base(base, folder)
-        if problems:
-            print("the base does not pass:\n  " + "\n  ".join(problems))
-            return 1
-        cases = file_cases(base, args.per_file, rng) + table_cases() + run_folder_cases() + cli_cases()
-        outcomes = []
-        for i, case in enumerate(cases):
-            outcomes.append(run_case(case, base, folder, i))
-            if args.keep is None or outcomes[-1].kind == "good":
-                shutil.rmtree(folder / f"case-{i:04d}", ignore_errors=True)
+        worker = Worker()
+        try:
+            problems = check_base(base, folder, worker)
+            if problems:
+                print("the base does not pass:\n  " + "\n  ".join(problems))
+                return 1
+            cases = file_cases(base, args.per_file, rng) + table_cases() + run_folder_cases() + cli_cases()
+            outcomes = []
+            for i, case in enumerate(cases):
+                outcomes.append(run_case(case, base, folder, i, worker))
+                if args.keep is None or outcomes[-1].kind == "good":
+                    shutil.rmtree(folder / f"case-{i:04d}", ignore_errors=True)
+        finally:
+            worker.stop()
         print(f"\n{len(cases)} bad inputs in {time.monotonic() - t0:.0f} s (seed {args.seed}, "
-              f"{args.per_file} key mutations per file)\n")
+              f"{args.per_file or 'all'} key mutations per file)\n")
         print_counts(outcomes)
         print()
         print(agreement(cases, outcomes, base, folder, args.processes, rng))
         print()
-        print_defects(outcomes)
+        print_defects(outcomes, args.verbose)
     return 0
 
 
 if __name__ == "__main__":
+    if sys.argv[1:2] == ["--worker"]:
+        worker_loop(int(sys.argv[2]))
+        sys.exit(0)
     sys.exit(main())
