@@ -31,7 +31,7 @@ import numpy as np
 import pandas as pd
 
 __all__ = ["NEAR_FIELD", "FAR_FIELD", "PlanFacts", "plan_facts", "write_sequences", "start_child",
-           "stack_dump_kill", "classify_stack", "export_run", "FileDiff", "RunDiff",
+           "dump_stacks", "kill_child", "stack_dump_kill", "classify_stack", "export_run", "FileDiff", "RunDiff",
            "compare_exports", "store_defects", "first_not_done", "bench_argv"]
 
 #: Near-field grid on the demo board: 10 mm H loop, 11 x 9 positions x 2 orientations.
@@ -172,27 +172,46 @@ def start_child(args: list[str], cwd: Path, log: Path, dump: Path) -> subprocess
                                 stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL)
 
 
-def stack_dump_kill(proc: subprocess.Popen, dump: Path, *, wait_s: float = 0.3) -> str | None:
-    """Dump the child's stacks (SIGUSR1), then SIGKILL it; the dump text, None if it had exited."""
+def dump_stacks(proc: subprocess.Popen, dump: Path, offset: int = 0, *,
+                wait_s: float = 0.3) -> tuple[str | None, int]:
+    """Ask the child for its stacks (SIGUSR1); (the text written after ``offset``, new end).
+
+    The text is None when the child has already exited. faulthandler writes the whole dump from
+    the signal handler, so the file stops growing within a millisecond.
+    """
     if proc.poll() is not None:
-        return None
+        return None, offset
     try:
         os.kill(proc.pid, signal.SIGUSR1)
     except ProcessLookupError:
-        return None
-    deadline = time.monotonic() + wait_s
-    text = ""
+        return None, offset
+    deadline, last = time.monotonic() + wait_s, -1
     while time.monotonic() < deadline:
-        text = dump.read_text(errors="replace") if dump.exists() else ""
-        if "in <module>" in text:
+        size = dump.stat().st_size if dump.exists() else 0
+        if size > offset and size == last:
             break
-        time.sleep(0.002)
+        last = size
+        time.sleep(0.001)
+    with open(dump, "rb") as fh:
+        fh.seek(offset)
+        data = fh.read()
+    return data.decode(errors="replace"), offset + len(data)
+
+
+def kill_child(proc: subprocess.Popen) -> bool:
+    """SIGKILL the child; True when it died of it (False: it had exited on its own)."""
     try:
         os.kill(proc.pid, signal.SIGKILL)
     except ProcessLookupError:
         pass
     proc.wait()
-    return text if proc.returncode == -signal.SIGKILL else None
+    return proc.returncode == -signal.SIGKILL
+
+
+def stack_dump_kill(proc: subprocess.Popen, dump: Path, offset: int = 0) -> str | None:
+    """Dump the child's stacks, then SIGKILL it; the dump text, None if it had exited."""
+    text, _ = dump_stacks(proc, dump, offset)
+    return text if kill_child(proc) and text is not None else None
 
 
 def _main_stack(text: str) -> list[str]:

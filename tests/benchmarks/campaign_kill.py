@@ -10,7 +10,9 @@ Then, ``--kills`` times: start ``bench run SEQ --sim`` (seed 1), wait for its fi
 pick a phase at random (seeded) and a random moment inside that phase's window of the clean
 run, and at that moment dump the child's Python stacks (SIGUSR1, ``faulthandler``) and kill it
 (SIGKILL). The dump tells the phase the child was really in (sweep, stage move, mast/turntable
-move, analysis, finals, report ...). Then ``bench resume RUN`` until it completes; a resume is
+move, analysis, finals, report ...). Moves last milliseconds on the accelerated simulator, so
+one drawn phase, "move", samples the stacks every 2-15 ms (random) from its moment on and kills
+the child as soon as a sample shows a stage, mast or turntable move. Then ``bench resume RUN`` until it completes; a resume is
 itself killed at a random moment with probability ``--rekill``. Every run ends exported
 (``bench export RUN --csv DIR``) and compared with the clean run's export, ignoring ids and
 wall-clock columns.
@@ -47,8 +49,10 @@ from campaign_common import (  # noqa: E402
     RunDiff,
     classify_stack,
     compare_exports,
+    dump_stacks,
     export_run,
     first_not_done,
+    kill_child,
     plan_facts,
     stack_dump_kill,
     start_child,
@@ -171,11 +175,33 @@ def reference_run(folder: Path, name: str, sequence: Path, tag: str = "ref") -> 
                      exit_wall - t0)
 
 
-def _draw(rng: random.Random, ref: Reference) -> tuple[str, float]:
-    """A phase of the clean run and a moment inside one of its windows (s after the first trace)."""
-    target = rng.choice(sorted(ref.windows))
-    lo, hi = rng.choice(ref.windows[target])
-    return target, rng.uniform(lo, hi)
+#: Phases a "move" kill hunts for (moves last milliseconds on the accelerated simulator).
+MOVES = ("stage move", "mast/turntable move", "final: mast/turntable move")
+
+
+def _draw(rng: random.Random, ref: Reference) -> tuple[str, float, float]:
+    """A phase of the clean run, a moment inside one of its windows and the window's end (s after
+    the first trace). The phase "move" hunts for a stage, mast or turntable move from that moment
+    on (see :func:`_hunt`), in the measuring and finals windows."""
+    target = rng.choice(sorted(ref.windows) + ["move"])
+    spans = (ref.windows.get("measure", []) + ref.windows.get("final", [])) if target == "move" \
+        else ref.windows[target]
+    lo, hi = rng.choice(spans)
+    return target, rng.uniform(lo, hi), hi
+
+
+def _hunt(proc: subprocess.Popen, dump: Path, until: float, rng: random.Random) -> str | None:
+    """Sample the child's stacks at random intervals of 2-15 ms until it is in a move, then kill
+    it (a few milliseconds after that sample); at ``until`` (monotonic) kill it anyway."""
+    offset = 0
+    while time.monotonic() < until:
+        text, offset = dump_stacks(proc, dump, offset)
+        if text is None:
+            return None
+        if classify_stack(text) in MOVES:
+            return text if kill_child(proc) else None
+        time.sleep(rng.uniform(0.002, 0.015))
+    return stack_dump_kill(proc, dump, offset)
 
 
 def kill_cycle(folder: Path, ref: Reference, index: int, rng: random.Random, rekill: float) -> Cycle:
@@ -193,7 +219,7 @@ def kill_cycle(folder: Path, ref: Reference, index: int, rng: random.Random, rek
 
 def _kill_once(work: Path, ref: Reference, index: int, rng: random.Random, rekill: float) -> Cycle:
     work.mkdir()
-    target, delay = _draw(rng, ref)
+    target, delay, until = _draw(rng, ref)
     proc = start_child(["run", str(ref.sequence), "--sim", "--out", str(work / "runs")], work,
                        work / "run.log", work / "run.dump")
     deadline = time.monotonic() + CHILD_TIMEOUT_S
@@ -201,7 +227,10 @@ def _kill_once(work: Path, ref: Reference, index: int, rng: random.Random, rekil
     seen = _wait_first_trace(run_dir, proc, deadline) if run_dir is not None else None
     if seen is not None:
         time.sleep(max(0.0, seen + delay - time.monotonic()))
-    phase = classify_stack(stack_dump_kill(proc, work / "run.dump"))
+    if target == "move" and seen is not None:
+        phase = classify_stack(_hunt(proc, work / "run.dump", seen + until + 0.5, rng))
+    else:
+        phase = classify_stack(stack_dump_kill(proc, work / "run.dump"))
     _wait_exit(proc)
     cycle = Cycle(ref.name, index, target, delay, phase, None, folder=work)
     if phase == "exited":
@@ -330,7 +359,7 @@ def print_defects(cycles: list[Cycle], seed: int) -> None:
         codes = Counter(n.rsplit(" ", 1)[-1] for c in lost for n in c.notes if n.startswith("report.html"))
         phases = Counter(c.phase for c in refused)
         print(f"  {len(refused)} runs were complete when killed ({dict(phases)}): 'bench resume' refused "
-              f"them (exit {Counter(c.resume_codes[-1] for c in refused)}); {len(lost)} of them had no "
+              f"them (exit codes {dict(Counter(c.resume_codes[-1] for c in refused))}); {len(lost)} of them had no "
               f"report.html, which 'bench report RUN' then wrote (exit codes {dict(codes)})")
         first = next(n for n in refused[0].notes if n.startswith("resume refused"))
         print(f"    e.g. {first}")
