@@ -358,7 +358,8 @@ def print_defects(cycles: list[Cycle], seed: int) -> None:
         lost = [c for c in refused if any(n.startswith("report.html missing") for n in c.notes)]
         codes = Counter(n.rsplit(" ", 1)[-1] for c in lost for n in c.notes if n.startswith("report.html"))
         phases = Counter(c.phase for c in refused)
-        print(f"  {len(refused)} runs were complete when killed ({dict(phases)}): 'bench resume' refused "
+        print(f"  {len(refused)} runs were already complete when a 'bench resume' came (killed in their report, "
+              f"or a resume killed in its report; first kill in {dict(phases)}): 'bench resume' refused "
               f"them (exit codes {dict(Counter(c.resume_codes[-1] for c in refused))}); {len(lost)} of them had no "
               f"report.html, which 'bench report RUN' then wrote (exit codes {dict(codes)})")
         first = next(n for n in refused[0].notes if n.startswith("resume refused"))
