@@ -508,6 +508,7 @@ def oracle_self_check(case: Case, proxy: FaultProxy) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Clean runs, then ``--runs-per-kind`` runs per fault kind; print the table and the defects."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--runs-per-kind", type=int, default=6, help="runs per fault kind (default 6)")
     parser.add_argument("--seed", type=int, default=11, help="seed of the fault draws (default 11)")

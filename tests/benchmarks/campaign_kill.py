@@ -103,6 +103,7 @@ class Cycle:
 
 
 def _wait_exit(proc: subprocess.Popen, timeout_s: float = CHILD_TIMEOUT_S) -> int:
+    """The child's exit code; -999 (after killing it) when it outlives ``timeout_s``."""
     try:
         return proc.wait(timeout=timeout_s)
     except subprocess.TimeoutExpired:
@@ -218,6 +219,7 @@ def kill_cycle(folder: Path, ref: Reference, index: int, rng: random.Random, rek
 
 
 def _kill_once(work: Path, ref: Reference, index: int, rng: random.Random, rekill: float) -> Cycle:
+    """One attempt of :func:`kill_cycle` in ``work`` (phase 'exited' when the run ended first)."""
     work.mkdir()
     target, delay, until = _draw(rng, ref)
     proc = start_child(["run", str(ref.sequence), "--sim", "--out", str(work / "runs")], work,
@@ -376,6 +378,7 @@ def _control(folder: Path, refs: dict) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Clean and control runs, then ``--kills`` kill cycles; print the tables and the defects."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--kills", type=int, default=50, help="kills of a running 'bench run' (default 50)")
     parser.add_argument("--seed", type=int, default=7, help="seed of the kill draws (default 7)")

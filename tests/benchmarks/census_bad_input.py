@@ -672,6 +672,7 @@ class Worker:
         return -1, "", "", f"Crash: the process died (memory limit {self.memory_bytes >> 30} GB?)"
 
     def stop(self) -> None:
+        """Kill the worker process (a new one starts with the next case)."""
         if self.proc is not None:
             self.proc.kill()
             self.proc.wait()
@@ -777,6 +778,7 @@ def is_defect(o: Outcome) -> bool:
 
 
 def print_counts(outcomes: list[Outcome]) -> None:
+    """Outcomes per input group: one row per group and one for all."""
     kinds = ["good", "exit 0 (valid)", "exit 0", "one line, exit 1", "traceback", "hang or crash", "multi-line",
              "wrote files", "other exit"]
     print(f"{'input':14s} {'cases':>5s} " + " ".join(f"{k:>16s}" for k in kinds))
@@ -845,6 +847,7 @@ def agreement(cases: list[Case], outcomes: list[Outcome], base: Path, folder: Pa
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Build the base, run every case, print the counts, the agreement and the defects."""
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--per-file", type=int, default=0,
                         help="key mutations per file, sampled (default 0: all of them)")

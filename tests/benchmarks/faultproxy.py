@@ -32,7 +32,7 @@ import threading
 import time
 from dataclasses import dataclass, field
 
-__all__ = ["FAULT_KINDS", "Fault", "ReplyFramer", "DeviceProxy", "FaultProxy"]
+__all__ = ["FAULT_KINDS", "ROLES", "Fault", "ReplyFramer", "DeviceProxy", "FaultProxy", "is_block", "block_payload"]
 
 FAULT_KINDS = ("drop", "stall", "truncate", "corrupt", "duplicate", "extra", "stage-error")
 
@@ -202,6 +202,7 @@ class DeviceProxy:
             return f
 
     def record_command(self, line: str) -> None:
+        """Keep a command line the client sent (with the time it was relayed)."""
         with self._lock:
             self.commands.append((time.time(), line))
 
@@ -363,6 +364,7 @@ class FaultProxy:
         return out
 
     def stop(self) -> None:
+        """Stop every device proxy and close their connections."""
         for device in self.devices.values():
             device.stop()
 
