@@ -19,6 +19,7 @@ from bench.tomlsource import (
     check_schema,
     cross_check_error,
     format_value,
+    is_file,
     quantity,
     quantity_list,
     read_toml,
@@ -45,6 +46,15 @@ Address = Annotated[StrictStr, Field(min_length=1)]
 #: Longest reply deadline an instrument section may ask for (one day): no bench means more,
 #: and a typo such as "1e12 s" would otherwise hang a run for ever.
 MAX_TIMEOUT_S = 86_400.0
+# Typo guards on values no bench has (a census of bad inputs found "1e300" accepted in each):
+#: an analyzer with all its attenuation in stays below this noise figure (from memory)
+MAX_NOISE_FIGURE = "100 dB"
+#: bench XYZ probe stages move at a few hundred mm/s at most (from memory)
+MAX_FEED = "1 m/s"
+#: a larger tolerance would accept a probe in the next grid cell (common practice: 1-10 mm pitch)
+MAX_POSITION_TOLERANCE = "5 mm"
+#: measurement distances and products stay within this (limits are given at up to 300 m)
+MAX_SITE = "1000 m"
 LengthPair = quantity_list("length", 2)
 AnglePair = quantity_list("angle", 2)
 
@@ -56,7 +66,7 @@ def _resolve_path(value: Any, info: pydantic.ValidationInfo) -> Path:
     context = info.context or {}
     base = Path(context.get("base_dir", "."))
     path = Path(value) if Path(value).is_absolute() else base / value
-    if context.get("check_files", False) and not path.is_file():
+    if context.get("check_files", False) and not is_file(path):
         raise bench_error(f"expected an existing file (relative to the bench file), found no "
                           f"file at {format_value(value)}")
     return path
@@ -92,7 +102,7 @@ class AnalyzerSection(_Model):
     address: Address
     profile: StrictStr = "scpi-analyzer"
     timeout_s: Annotated[quantity("time", positive=True), Field(le=MAX_TIMEOUT_S)] = Field(10.0, alias="timeout")
-    noise_figure_db: Optional[quantity("db", non_negative=True)] = Field(
+    noise_figure_db: Optional[quantity("db", non_negative=True, at_most=MAX_NOISE_FIGURE)] = Field(
         None, alias="noise_figure")
 
 
@@ -127,11 +137,12 @@ class StageSection(_Model):
 
     address: Address
     profile: StrictStr = "gcode-cartesian"
-    baudrate: Optional[Annotated[StrictInt, Field(gt=0)]] = None
+    # from memory: the fastest common USB-serial bridges run at 12 Mbaud
+    baudrate: Optional[Annotated[StrictInt, Field(gt=0, le=12_000_000)]] = None
     limits: StageTravel
     safe_z_m: quantity("length") = Field(alias="safe_z")
-    max_feed_m_per_s: quantity("speed", positive=True) = Field(alias="max_feed")
-    position_tolerance_m: quantity("length", positive=True) = Field(
+    max_feed_m_per_s: quantity("speed", positive=True, at_most=MAX_FEED) = Field(alias="max_feed")
+    position_tolerance_m: quantity("length", positive=True, at_most=MAX_POSITION_TOLERANCE) = Field(
         5e-5, alias="position_tolerance")
     board_origin_m: quantity_list("length", 3) = Field(alias="board_origin")
     rotary_axis: StrictBool = False
@@ -189,15 +200,17 @@ class TurntableSection(_Model):
 class SiteSection(_Model):
     """``[site]``: measurement distance and the largest dimension of the product, m."""
 
-    distance_m: quantity("length", positive=True) = Field(alias="distance")
-    eut_size_m: Optional[quantity("length", positive=True)] = Field(None, alias="eut_size")
+    distance_m: quantity("length", positive=True, at_most=MAX_SITE) = Field(alias="distance")
+    eut_size_m: Optional[quantity("length", positive=True, at_most=MAX_SITE)] = Field(None, alias="eut_size")
 
 
 class Probe(_Model):
     """``[probes.<name>]``: near-field probe kind, tool number and factor table path."""
 
     kind: Literal["h-loop", "e-probe"]
-    tool: Annotated[StrictInt, Field(ge=0)]
+    # tool 0 is no probe: far-field steps park the stage there (T0), so no probe may use it;
+    # a T word has at most four digits on the controllers we know (common practice)
+    tool: Annotated[StrictInt, Field(ge=1, le=9999)]
     factor: FilePath
 
 

@@ -53,9 +53,12 @@ def export_run(run, out_dir: Path, *, parquet: bool = False) -> list[Path]:
     out_dir = Path(out_dir)
     if parquet:
         _need_pyarrow()
+    meta = run.traces()  # a damaged database fails here, before anything is written
+    if out_dir.exists() and not out_dir.is_dir():
+        raise ConfigError(f"{out_dir}: expected a folder for the export, found a file")
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
-        return _write_all(run, out_dir, parquet)
+        return _write_all(run, meta, out_dir, parquet)
     except OSError as exc:
         raise StoreError(f"{out_dir}: cannot write the export: {exc.strerror or exc}") from None
 
@@ -67,8 +70,7 @@ def _need_pyarrow() -> None:
         raise ConfigError("--parquet needs pyarrow: pip install 'emission-bench[parquet]'") from exc
 
 
-def _write_all(run, out_dir: Path, parquet: bool) -> list[Path]:
-    meta = run.traces()
+def _write_all(run, meta: pd.DataFrame, out_dir: Path, parquet: bool) -> list[Path]:
     written = [_csv(_trace_table(meta), out_dir / "traces.csv")]
     spectra = []
     for label, group in meta.groupby("step_label", sort=False):

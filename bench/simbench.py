@@ -185,9 +185,22 @@ def _simulated_address(role: str, original: str, addresses: dict[str, str]) -> s
 
 def serve_forever(*, port: int = 0, board: Path | None = None, seed: int = 1, realtime: bool = False,
                   announce=None) -> int:
-    """``bench sim``: serve until interrupted; ``announce(addresses)`` is called once serving."""
+    """``bench sim``: serve until interrupted; ``announce(addresses)`` is called once serving.
+
+    Raises
+    ------
+    ConfigError
+        ``port`` is not a TCP port number (0-65535) or cannot be bound (in use, not allowed).
+    """
+    if not 0 <= int(port) <= 65535:
+        raise ConfigError(f"expected a TCP port number 0-65535 (0: any free port), found {port}", key="--port")
     sim = SimulatedBench(_load_board(board), seed=seed, realtime=realtime, analyzer_port=port)
-    addresses = sim.start()
+    try:
+        addresses = sim.start()
+    except OSError as exc:
+        sim.stop()
+        raise ConfigError(f"cannot serve the analyzer on 127.0.0.1 port {port}: {exc.strerror or exc}",
+                          key="--port") from None
     if announce is not None:
         announce(addresses)
     stop = threading.Event()

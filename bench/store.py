@@ -165,12 +165,17 @@ class RunStore:
         self.readonly = readonly
         self._manifest_cache: tuple[int, dict] | None = None
         db = self.folder / "data.sqlite"
-        if not (self.folder / "manifest.toml").is_file():
+        if not _is_file(self.folder / "manifest.toml"):
             # a path the user typed: a mistake in the command line, not a storage failure
             raise ConfigError(f"{self.folder}: not a run folder (no manifest.toml)")
         try:
             if readonly:
                 self._db = sqlite3.connect(f"file:{db}?mode=ro", uri=True, check_same_thread=False)
+                try:
+                    _check_tables(self._db)
+                except sqlite3.Error:
+                    self._db.close()
+                    raise
             else:
                 self._db = sqlite3.connect(db, check_same_thread=False)
                 self._db.execute("PRAGMA journal_mode=WAL")
@@ -191,8 +196,8 @@ class RunStore:
             if self._manifest_cache is None or self._manifest_cache[0] != stamp:
                 data = tomllib.loads(self.manifest_path.read_text(encoding="utf-8"))
                 self._manifest_cache = (stamp, data)
-        except (OSError, tomllib.TOMLDecodeError) as exc:
-            raise StoreError(f"{self.manifest_path}: unreadable manifest: {exc}") from exc
+        except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+            raise StoreError(f"{self.manifest_path}: unreadable manifest: {exc}") from None
         return copy.deepcopy(self._manifest_cache[1])
 
     def update_manifest(self, **changes) -> dict:
@@ -326,7 +331,10 @@ class RunStore:
 
     # ------------------------------------------------------------------ reading
     def done_actions(self) -> set[int]:
-        return {r[0] for r in self._db.execute("SELECT action_index FROM actions_done")}
+        try:
+            return {r[0] for r in self._db.execute("SELECT action_index FROM actions_done")}
+        except sqlite3.Error as exc:
+            raise StoreError(f"{self.folder / 'data.sqlite'}: cannot read the run database: {exc}") from None
 
     def traces(self, step_label: str | None = None) -> pd.DataFrame:
         """Metadata of stored traces (no values), one row per trace."""
@@ -335,12 +343,23 @@ class RunStore:
         if step_label is not None:
             sql += " WHERE step_label = ?"
             args = (step_label,)
-        return pd.read_sql_query(sql + " ORDER BY id", self._db, params=args)
+        return self._frame(sql + " ORDER BY id", args)
+
+    def _frame(self, sql: str, params: tuple = ()) -> pd.DataFrame:
+        """A query's rows as a frame; a damaged database is one StoreError line."""
+        try:
+            return pd.read_sql_query(sql, self._db, params=params)
+        except (sqlite3.Error, pd.errors.DatabaseError) as exc:
+            raise StoreError(f"{self.folder / 'data.sqlite'}: cannot read the run database: "
+                             f"{getattr(exc, '__cause__', None) or exc}") from None
 
     def trace(self, trace_id: int) -> tuple[np.ndarray, np.ndarray]:
         """(freq_hz, level) of one trace; level in the trace's ``unit``."""
-        row = self._db.execute("SELECT start_hz, stop_hz, points, data FROM traces WHERE id = ?",
-                               (int(trace_id),)).fetchone()
+        try:
+            row = self._db.execute("SELECT start_hz, stop_hz, points, data FROM traces WHERE id = ?",
+                                   (int(trace_id),)).fetchone()
+        except sqlite3.Error as exc:
+            raise StoreError(f"{self.folder / 'data.sqlite'}: cannot read trace {trace_id}: {exc}") from None
         if row is None:
             raise StoreError(f"{self.folder}: no trace {trace_id}")
         start, stop, points, blob = row
@@ -370,20 +389,22 @@ class RunStore:
         if step_label is not None:
             sql += " WHERE step_label = ?"
             args = (step_label,)
-        return pd.read_sql_query(sql + " ORDER BY id", self._db, params=args)
+        return self._frame(sql + " ORDER BY id", args)
 
     def events(self) -> pd.DataFrame:
-        return pd.read_sql_query("SELECT * FROM events ORDER BY id", self._db)
+        return self._frame("SELECT * FROM events ORDER BY id")
 
     def export_csv(self, out_dir: Path) -> list[Path]:
         """Write ``traces.csv`` (metadata), one long ``spectra-<step>.csv`` per step, ``results.csv``."""
         out_dir = Path(out_dir)
+        meta = self.traces()  # a damaged database fails here, before anything is written
+        if out_dir.exists() and not out_dir.is_dir():
+            raise ConfigError(f"{out_dir}: expected a folder for the export, found a file")
         try:
             out_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise StoreError(f"{out_dir}: cannot create the export folder: {exc.strerror or exc}") from None
         written = []
-        meta = self.traces()
         path = out_dir / "traces.csv"
         meta.to_csv(path, index=False)
         written.append(path)
@@ -409,6 +430,23 @@ def _file_label(label: str) -> str:
     import re
 
     return re.sub(r"[^A-Za-z0-9._-]+", "_", str(label)).strip("._") or "step"
+
+
+def _is_file(path: Path) -> bool:
+    """``Path.is_file`` that says False for a path the system cannot look up (too long, ...)."""
+    try:
+        return path.is_file()
+    except (OSError, ValueError):
+        return False
+
+
+def _check_tables(db: sqlite3.Connection) -> None:
+    """Raise ``sqlite3.Error`` unless ``db`` is a run database (garbage, empty, truncated)."""
+    found = {r[0] for r in db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
+    missing = sorted({"traces", "actions_done", "results", "events"} - found)
+    if missing:
+        raise sqlite3.DatabaseError(f"not a run database (no table {', '.join(missing)})")
+    db.execute("SELECT id FROM traces LIMIT 1").fetchone()
 
 
 def create_run(root: Path, name: str, manifest: dict) -> RunStore:

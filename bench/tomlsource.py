@@ -31,6 +31,7 @@ __all__ = [
     "TomlSource",
     "read_toml",
     "parse_toml",
+    "is_file",
     "format_key_path",
     "format_value",
     "suggest",
@@ -129,6 +130,18 @@ def parse_toml(text: str, file: str) -> TomlSource:
     except tomllib.TOMLDecodeError as exc:
         raise _with_all(_syntax_error(file, text, str(exc))) from exc
     return TomlSource(file=file, text=text, data=data, lines=_KeyLineScanner(text).scan())
+
+
+def is_file(path: str | Path) -> bool:
+    """True when ``path`` names an existing regular file.
+
+    A path the system cannot even look up (a name longer than the file system allows, a loop of
+    symbolic links) is no file either, instead of an ``OSError`` escaping from ``Path.is_file``.
+    """
+    try:
+        return Path(path).is_file()
+    except (OSError, ValueError):  # ValueError: a NUL byte in the path
+        return False
 
 
 def _os_reason(exc: Exception) -> str:
@@ -683,7 +696,7 @@ def _length_message(kind: str, ctx: dict, value: Any) -> str:
 
 
 def quantity(dimension: str, *, positive: bool = False, non_negative: bool = False,
-             radio: bool = False) -> typing.Any:
+             radio: bool = False, at_most: str | None = None) -> typing.Any:
     """A model field type: a quantity string parsed by :func:`bench.units.parse` to SI.
 
     Parameters
@@ -695,9 +708,11 @@ def quantity(dimension: str, *, positive: bool = False, non_negative: bool = Fal
     radio : bool
         A radio frequency: a non-zero value below 1 Hz is refused as a wrong prefix
         (``"30 mHz"`` -> did you mean ``"30 MHz"``); see :func:`bench.units.parse`.
+    at_most : str, optional
+        The largest value, written as a quantity (``"1 m/s"``): a typo guard, named as written.
     """
     return typing.Annotated[float, pydantic.BeforeValidator(
-        _QuantityParser(dimension, positive, non_negative, radio))]
+        _QuantityParser(dimension, positive, non_negative, radio, at_most))]
 
 
 def quantity_list(dimension: str, count: int, **kwargs: bool) -> typing.Any:
@@ -718,6 +733,7 @@ class _QuantityParser:
     positive: bool = False
     non_negative: bool = False
     radio: bool = False
+    at_most: str | None = None
 
     def __call__(self, value: Any) -> float:
         from bench import units  # leaf module; imported here to keep this module light
@@ -734,6 +750,10 @@ class _QuantityParser:
         if (self.positive and result <= 0) or (self.non_negative and result < 0):
             sign = "positive" if self.positive else "non-negative"
             raise bench_error(f"expected a {sign} {word}, found {format_value(value)}")
+        if self.at_most is not None and result > units.parse(self.at_most, self.dimension):
+            article = "an" if word[:1] in "aeiou" else "a"
+            raise bench_error(f"expected {article} {word} of at most {self.at_most}, "
+                              f"found {format_value(value)}")
         return result
 
 

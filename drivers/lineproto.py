@@ -33,9 +33,8 @@ from typing import Annotated, Any, Optional
 import pydantic
 from pydantic import Field, StrictBool, StrictInt, StrictStr
 
-from bench.drivers.profile import Pattern, ProfileModel, ProfileTable, pattern_with
+from bench.drivers.profile import Pattern, ProfileModel, ProfileTable, Terminator, duration, pattern_with
 from bench.errors import InstrumentError, ReplyTimeoutError
-from bench.tomlsource import quantity
 
 __all__ = [
     "Handshake",
@@ -48,6 +47,9 @@ __all__ = [
 ]
 
 _MAX_RESENDS = 3
+#: Highest baud rate a profile may give (from memory: the fastest common USB-serial bridges
+#: run at 12 Mbaud); a typo such as 1152000000 is refused.
+MAX_BAUDRATE = 12_000_000
 
 
 def checksum(text: str) -> int:
@@ -110,8 +112,8 @@ class Handshake(ProfileTable):
     errors: PatternList = ()
     resend: Optional[pattern_with("line")] = None
     banner: Optional[Pattern] = None
-    timeout_s: quantity("time", positive=True) = Field(5.0, alias="timeout")
-    banner_timeout_s: quantity("time", positive=True) = Field(5.0, alias="banner_timeout")
+    timeout_s: duration() = Field(5.0, alias="timeout")
+    banner_timeout_s: duration() = Field(5.0, alias="banner_timeout")
     line_numbers: StrictBool = False
     error_codes: dict[int, StrictStr] = {}
     no_ok: tuple[Annotated[StrictStr, Field(min_length=1)], ...] = ()
@@ -130,10 +132,11 @@ class LineConnection(ProfileTable):
         Deadline for opening the port, seconds (key ``open_timeout``).
     """
 
-    baudrate: Annotated[StrictInt, Field(gt=0)]
-    read_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
-    write_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
-    open_timeout_s: quantity("time", positive=True) = Field(5.0, alias="open_timeout")
+    # from memory: the fastest common USB-serial bridges run at 12 Mbaud
+    baudrate: Annotated[StrictInt, Field(gt=0, le=MAX_BAUDRATE)]
+    read_termination: Terminator = "\n"
+    write_termination: Terminator = "\n"
+    open_timeout_s: duration() = Field(5.0, alias="open_timeout")
 
 
 class LineDeviceProfile(ProfileModel):

@@ -21,7 +21,7 @@ import pydantic
 from pydantic import Field, StrictFloat, StrictInt, StrictStr
 
 from bench.drivers.lineproto import LineConversation, LineDeviceProfile
-from bench.drivers.profile import ProfileTable, pattern_with, template_with
+from bench.drivers.profile import AsciiWord, ProfileTable, duration, pattern_with, template_with
 from bench.errors import ConfigError, InstrumentError, PlanError, ReplyTimeoutError, SafetyLimitError
 from bench.tomlsource import cross_check_error, format_value, quantity
 from bench.transports import open_transport
@@ -82,10 +82,10 @@ class BusyDialect(ProfileTable):
 
     query: template_with() = "BUSY?"
     reply: pattern_with("busy") = re.compile(r"^BUSY\s+(?P<busy>[01])$")
-    busy_value: Annotated[StrictStr, Field(min_length=1)] = "1"
-    poll_interval_s: quantity("time", positive=True) = Field(0.25, alias="poll_interval")
-    time_factor: Annotated[StrictFloat, Field(ge=1.0)] = 2.0
-    time_margin_s: quantity("time", non_negative=True) = Field(10.0, alias="time_margin")
+    busy_value: AsciiWord = "1"
+    poll_interval_s: duration() = Field(0.25, alias="poll_interval")
+    time_factor: Annotated[StrictFloat, Field(ge=1.0, le=100.0)] = 2.0  # more would wait for ever
+    time_margin_s: duration(positive=False) = Field(10.0, alias="time_margin")
     identify: template_with() = "ID?"
     stop: template_with() = "STOP"
 
@@ -123,8 +123,8 @@ class AxisDialect(ProfileTable):
 class PolarizationCodes(ProfileTable):
     """``polarization_codes``: the wire code of each polarization."""
 
-    horizontal: Annotated[StrictStr, Field(min_length=1)] = "H"
-    vertical: Annotated[StrictStr, Field(min_length=1)] = "V"
+    horizontal: AsciiWord = "H"
+    vertical: AsciiWord = "V"
 
     @pydantic.model_validator(mode="after")
     def _distinct(self) -> "PolarizationCodes":
@@ -155,12 +155,13 @@ class MastDialect(AxisDialect):
 
     unit: Literal["m", "cm", "mm"]
     speed_per_s: quantity("speed", positive=True) = Field(alias="speed")
-    tolerance: quantity("length", positive=True)
+    # a mast 10 cm off is at another height (common practice: height scans step 0.25-1 m)
+    tolerance: quantity("length", positive=True, at_most="10 cm")
     polarization: template_with("code") = "POL {code}"
     polarization_query: template_with() = "POL?"
     polarization_reply: pattern_with("code") = re.compile(r"^POL\s+(?P<code>\w+)$")
     polarization_codes: PolarizationCodes = PolarizationCodes()
-    polarization_time_s: quantity("time", positive=True) = Field(10.0, alias="polarization_time")
+    polarization_time_s: duration() = Field(10.0, alias="polarization_time")
 
 
 class TurntableDialect(AxisDialect):
@@ -168,7 +169,7 @@ class TurntableDialect(AxisDialect):
 
     unit: Literal["deg"]
     speed_per_s: quantity("angular_speed", positive=True) = Field(alias="speed")
-    tolerance: quantity("angle", positive=True)
+    tolerance: quantity("angle", positive=True, at_most="360 deg")  # within one turn
 
 
 class PositionerProfile(LineDeviceProfile):

@@ -30,6 +30,8 @@ from bench.tomlsource import (
     bench_error,
     check_schema,
     format_value,
+    is_file,
+    quantity,
     read_toml,
     suggest,
     validation_to_config_error,
@@ -45,6 +47,10 @@ __all__ = [
     "load_profile_source",
     "pattern_with",
     "template_with",
+    "duration",
+    "AsciiWord",
+    "Terminator",
+    "MAX_DURATION_S",
 ]
 
 #: Profile kinds and how messages name them.
@@ -90,7 +96,7 @@ def load_profile_source(name_or_path: str | Path, *, base_dir: Path | None = Non
     text_name = str(name_or_path)
     if not text_name.endswith(".toml") and "/" not in text_name and "\\" not in text_name:
         entry = resources.files("bench.drivers") / "profiles" / f"{text_name}.toml"
-        if not entry.is_file():
+        if not _builtin_exists(entry):
             known = ", ".join(builtin_profiles())
             raise ConfigError(f"unknown instrument profile {text_name!r} (built-in: {known}; or give a path to a .toml)")
         with resources.as_file(entry) as path:
@@ -99,9 +105,17 @@ def load_profile_source(name_or_path: str | Path, *, base_dir: Path | None = Non
     path = Path(text_name)
     if not path.is_absolute() and base_dir is not None:
         path = base_dir / path
-    if not path.is_file():
+    if not is_file(path):
         raise ConfigError(f"profile file not found: {path}")
     return read_toml(path)
+
+
+def _builtin_exists(entry) -> bool:
+    """True when a built-in profile file exists (a name too long to look up is none)."""
+    try:
+        return entry.is_file()
+    except (OSError, ValueError):
+        return False
 
 
 # ---------------------------------------------------------------------------- the models
@@ -203,9 +217,14 @@ def _compile(value: Any) -> re.Pattern[str]:
     if not isinstance(value, str):
         raise bench_error(f"expected a regular expression in quotes, found {format_value(value)}")
     try:
-        return re.compile(value)
+        pattern = re.compile(value)
     except re.error as exc:
         raise bench_error(f"expected a valid regular expression, found {format_value(value)} ({exc})") from None
+    if pattern.search("") is not None:
+        # '' or '.*' would take every line (an empty one too) for an 'ok', an error, a banner
+        raise bench_error(f"expected a regular expression that an empty line does not match, "
+                          f"found {format_value(value)}")
+    return pattern
 
 
 #: A regular expression written as a TOML string, compiled once.
@@ -237,6 +256,9 @@ class _TemplateCheck:
     def __call__(self, value: Any) -> str:
         if not isinstance(value, str) or not value.strip():
             raise bench_error(f"expected a command in quotes, found {format_value(value)}")
+        if not _printable_ascii(value):
+            # commands go out as ASCII bytes; a control character (a line end) would split one
+            raise bench_error(f"expected a command of printable ASCII characters, found {format_value(value)}")
         try:
             found = {name for _, name, _, _ in string.Formatter().parse(value) if name is not None}
         except ValueError:
@@ -245,6 +267,40 @@ class _TemplateCheck:
             names = " and ".join("{" + f + "}" for f in self.fields) or "no {...} fields"
             raise bench_error(f"expected a command template with {names}, found {format_value(value)}")
         return value
+
+
+def _printable_ascii(text: str) -> bool:
+    return all(" " <= c <= "~" for c in text)
+
+
+def _ascii_terminator(value: Any) -> Any:
+    if isinstance(value, str) and value and not value.isascii():
+        raise bench_error(f"expected a line terminator of ASCII characters (such as \"\\n\"), found "
+                          f"{format_value(value)}")
+    return value
+
+
+#: A line terminator: ASCII characters (sent and matched as bytes).
+Terminator = Annotated[str, pydantic.BeforeValidator(_ascii_terminator), Field(min_length=1, strict=True)]
+
+#: Longest time a profile may give (one day), as for the bench file's timeouts: no instrument
+#: needs more, and a typo such as "1e12 s" would otherwise hang a run for ever.
+MAX_DURATION_S = 86_400.0
+
+
+def duration(*, positive: bool = True) -> Any:
+    """A time quantity in seconds, > 0 (or >= 0 with ``positive=False``), at most one day."""
+    return quantity("time", positive=positive, non_negative=not positive, at_most=f"{MAX_DURATION_S:g} s")
+
+
+def _ascii_word(value: Any) -> Any:
+    if isinstance(value, str) and not _printable_ascii(value):
+        raise bench_error(f"expected printable ASCII characters (it is sent in a command), found {format_value(value)}")
+    return value
+
+
+#: A code sent inside a command or compared with a reply: printable ASCII, not empty.
+AsciiWord = Annotated[str, pydantic.BeforeValidator(_ascii_word), Field(min_length=1, strict=True)]
 
 
 def template_with(*fields: str) -> Any:

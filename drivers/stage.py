@@ -31,7 +31,7 @@ import pydantic
 from pydantic import Field, StrictFloat, StrictInt
 
 from bench.drivers.lineproto import LineConversation, LineDeviceProfile
-from bench.drivers.profile import ProfileTable, pattern_with, template_with
+from bench.drivers.profile import ProfileTable, duration, pattern_with, template_with
 from bench.errors import InstrumentError, PlanError, SafetyLimitError
 from bench.stagelimits import StageLimits
 from bench.tomlsource import cross_check_error, format_value, quantity
@@ -104,7 +104,7 @@ class StageRotary(ProfileTable):
 
     axis: Literal["A", "B", "C"] = "A"
     feed_deg_per_s: quantity("angular_speed", positive=True) = Field(90.0, alias="feed")
-    tolerance_deg: quantity("angle", positive=True) = Field(0.1, alias="tolerance")
+    tolerance_deg: quantity("angle", positive=True, at_most="360 deg") = Field(0.1, alias="tolerance")
 
 
 class StageTiming(ProfileTable):
@@ -113,11 +113,11 @@ class StageTiming(ProfileTable):
     The deadline of a move is ``move_time_factor * (d/v + v/a) + move_time_margin``.
     """
 
-    home_timeout_s: quantity("time", positive=True) = Field(180.0, alias="home_timeout")
-    tool_change_timeout_s: quantity("time", positive=True) = Field(60.0, alias="tool_change_timeout")
+    home_timeout_s: duration() = Field(180.0, alias="home_timeout")
+    tool_change_timeout_s: duration() = Field(60.0, alias="tool_change_timeout")
     accel_m_per_s2: quantity("acceleration", positive=True) = Field(0.1, alias="accel")
-    move_time_factor: Annotated[StrictFloat, Field(ge=1.0)] = 1.5
-    move_time_margin_s: quantity("time", non_negative=True) = Field(10.0, alias="move_time_margin")
+    move_time_factor: Annotated[StrictFloat, Field(ge=1.0, le=100.0)] = 1.5  # more would wait for ever
+    move_time_margin_s: duration(positive=False) = Field(10.0, alias="move_time_margin")
 
 
 class StageProfile(LineDeviceProfile):

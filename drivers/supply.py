@@ -13,13 +13,12 @@ the output query, then lets the board settle.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated, Literal
+from typing import Literal
 
-from pydantic import Field, StrictStr
+from pydantic import Field
 
-from bench.drivers.profile import ProfileModel, ProfileTable, load_profile, template_with
+from bench.drivers.profile import ProfileModel, ProfileTable, Terminator, duration, load_profile, template_with
 from bench.errors import InstrumentError
-from bench.tomlsource import quantity
 from bench.transports import TransportSettings
 
 __all__ = ["Supply", "SupplyCommands", "SupplyIo", "SupplyProfile", "load_supply_profile"]
@@ -27,10 +26,10 @@ __all__ = ["Supply", "SupplyCommands", "SupplyIo", "SupplyProfile", "load_supply
 class SupplyIo(ProfileTable):
     """``[io]``: line terminators and deadlines (s) of the connection."""
 
-    read_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
-    write_termination: Annotated[StrictStr, Field(min_length=1)] = "\n"
-    timeout_s: quantity("time", positive=True) = Field(5.0, alias="timeout")
-    open_timeout_s: quantity("time", positive=True) = Field(5.0, alias="open_timeout")
+    read_termination: Terminator = "\n"
+    write_termination: Terminator = "\n"
+    timeout_s: duration() = Field(5.0, alias="timeout")
+    open_timeout_s: duration() = Field(5.0, alias="open_timeout")
 
 
 class SupplyCommands(ProfileTable):
@@ -54,7 +53,7 @@ class SupplyCommands(ProfileTable):
     output_on: template_with()
     output_off: template_with()
     output_query: template_with()
-    settle_s: quantity("time", non_negative=True) = Field(alias="settle")
+    settle_s: duration(positive=False) = Field(alias="settle")
 
     def __getitem__(self, key: str) -> str:
         """Mapping-style access by key name (``commands["output_on"]``)."""

@@ -79,5 +79,6 @@ def test_command_line_mistakes_found_by_the_census(tmp_path, capsys):
     folder.mkdir()
     (folder / "manifest.toml").write_text('state = "interrupted"\n', encoding="utf-8")
     sqlite3.connect(folder / "data.sqlite").close()  # an empty database beside it
-    assert main(["resume", str(folder), "--no-plots"]) == 2
-    assert "names no sequence file" in capsys.readouterr().err
+    assert main(["resume", str(folder), "--no-plots"]) in (1, 2)  # a storage or a file mistake
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("emission-bench: ") and "Traceback" not in err[0]

@@ -441,8 +441,11 @@ def test_ctrl_c_keeps_a_resumable_run(tmp_path):
     many = QUICK + "".join(f'\n[[steps]]\nkind = "sweep"\nlabel = "s{i}"\nsweep = "cd"\n' for i in range(400))
     seq = _write(tmp_path / "many.toml", many)
     runs = tmp_path / "runs"
+    # the simulated analyzer stops answering after sweep 50 (until the 10 s reply deadline): the
+    # run cannot end before the SIGINT, however slowly this process polls on a loaded machine
     proc = subprocess.Popen([sys.executable, "-c", "import sys; from bench.cli import main; sys.exit(main())",
-                             "run", str(seq), "--sim", "--no-plots", "--out", str(runs)],
+                             "run", str(seq), "--sim", "--no-plots", "--out", str(runs),
+                             "--fault", "hang-after-sweeps=50"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             cwd=tmp_path)  # not the repository: its bench/ folder would shadow the install
     try:

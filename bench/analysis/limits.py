@@ -365,7 +365,8 @@ class _SegmentModel(BaseModel):
 class _LineModel(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
     segments: list[_SegmentModel] = Field(min_length=1)
-    bandwidth: _Frequency | None = None
+    # typo guard: measurement bandwidths are 200 Hz to 1 MHz (CISPR 16-1-1 bands A to E)
+    bandwidth: quantity("frequency", positive=True, at_most="100 MHz") | None = None
     clause: StrictStr = ""
     start_exclusive: StrictBool = False
 
@@ -377,7 +378,8 @@ class _LimitFileModel(BaseModel):
     title: StrictStr
     source: StrictStr = Field(min_length=1)
     quantity: Literal["dbuv_per_m", "dbuv", "dbua_per_m"]
-    distance: quantity("length", positive=True) | None = None
+    # typo guard: limits are specified at 3 m to 300 m (the longest: FCC 15.209 below 490 kHz)
+    distance: quantity("length", positive=True, at_most="1000 m") | None = None
     notes: StrictStr = ""
     lines: dict[Literal["quasi-peak", "peak", "average"], _LineModel] = Field(min_length=1)
 

@@ -76,6 +76,9 @@ _FIELD_ROLES = ("antenna_factor", "probe_factor")
 _NONNEGATIVE_ROLES = ("cable_loss", "attenuator", "preamp_gain")
 # Relative slack at the table ends: a sweep point computed as 6e9*(1+1e-16) is still covered.
 _END_SLACK = 1e-9
+#: Largest correction a table may hold, dB (common practice: antenna and probe factors, cable
+#: losses and preamp gains stay well inside it; 1e308 is a typo, not a transducer).
+MAX_ABS_VALUE_DB = 200.0
 
 
 def antenna_factor_from_gain_db(freq_hz, gain_dbi, impedance_ohm: float = 50.0):
@@ -219,6 +222,10 @@ def _check_table(table: TransducerTable) -> None:
         i = int(np.argmax(steps <= 0)) + 1
         raise ConfigError(f"{where}: frequencies must increase strictly, found "
                           f"{freq[i]:.9g} Hz after {freq[i - 1]:.9g} Hz (point {i + 1})")
+    if np.any(np.abs(value) > MAX_ABS_VALUE_DB):
+        i = int(np.argmax(np.abs(value) > MAX_ABS_VALUE_DB))
+        raise ConfigError(f"{where}: expected values within +-{MAX_ABS_VALUE_DB:g} dB, found {value[i]:g} dB at "
+                          f"{units.format_hz(freq[i])} (point {i + 1})")
     if table.role in _NONNEGATIVE_ROLES and np.any(value < 0):
         i = int(np.argmax(value < 0))
         raise ConfigError(f"{where}: a {table.role} is >= 0 dB (its sign is applied by the "

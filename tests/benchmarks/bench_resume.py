@@ -34,6 +34,7 @@ from bench_sweeps import (  # noqa: E402
     bench_command,
     count_traces,
     machine_lines,
+    planned_plan,
     planned_traces,
     read_run,
     run_child,
@@ -169,9 +170,7 @@ def kill_and_resume(folder: Path, case: str, seq: Path, kill_at: int) -> KillFig
 
 def planned_action_indices(seq: Path) -> set[int]:
     """Indices of the plan's actions (each stores one trace per segment)."""
-    from bench.app import demo_bench_path, prepare
-
-    return {a.index for a in prepare(seq, bench_path=demo_bench_path(), sim=False).plan.actions}
+    return {a.index for a in planned_plan(seq).actions}
 
 
 def print_kill_table(rows: list[KillFigures]) -> None:

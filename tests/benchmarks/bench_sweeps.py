@@ -158,11 +158,17 @@ def count_traces(folder: Path) -> int:
         db.close()
 
 
+def planned_plan(sequence_path: Path):
+    """The plan of a sequence on the simulated demo bench (the simulator starts, nothing is measured)."""
+    from bench.app import BenchOptions, prepare
+
+    with contextlib.ExitStack() as stack:  # the demo bench's addresses are placeholders for --sim
+        return prepare(sequence_path, BenchOptions(sim=True), stack=stack).plan
+
+
 def planned_traces(sequence_path: Path) -> int:
     """Traces the planner expects for a sequence on the demo bench (touches no instrument)."""
-    from bench.app import demo_bench_path, prepare
-
-    return prepare(sequence_path, bench_path=demo_bench_path(), sim=False).plan.n_traces
+    return planned_plan(sequence_path).n_traces
 
 
 @contextlib.contextmanager
