@@ -268,8 +268,11 @@ def classify_stack(text: str | None) -> str:
 
 
 def export_run(run_dir: Path, out_dir: Path, cwd: Path) -> subprocess.CompletedProcess:
-    """``bench export RUN --csv DIR`` in a child process."""
-    return subprocess.run(bench_argv(["export", str(run_dir), "--csv", str(out_dir)]), cwd=cwd,
+    """The run's stored data in machine form (``RunStore.export_csv``: every column, the raw
+    readings), written by a child process: what the comparison needs, not the people's export."""
+    code = ("import sys; from bench.store import open_run; "
+            "run = open_run(sys.argv[1]); run.export_csv(sys.argv[2]); run.close()")
+    return subprocess.run([sys.executable, "-c", code, str(run_dir), str(out_dir)], cwd=cwd,
                           capture_output=True, text=True, timeout=300)
 
 
