@@ -130,7 +130,9 @@ class StepWriter:
         """A step compared with a limit, or a near-field map: its first picture goes to the top."""
         if not (self.info.get("limit") or not kind.far_field):
             return
-        first = next((i for i, part in enumerate(self.parts) if part.startswith("<img")), None)
+        images = [i for i, part in enumerate(self.parts) if part.startswith("<img")]
+        maps = [i for i in images if self.parts[i].startswith('<img alt="map of')]
+        first = (maps or images or [None])[0]  # a near-field step's map says more than its spectrum
         if first is not None:
             self.key_parts.append(self.parts[first])
             self.parts[first] = (f'<p><a href="#key-{esc(safe_name(self.label))}">The picture of this step '
