@@ -14,7 +14,6 @@ machine column names with units: ``freq_hz``, ``reading_dbuv``, ``level``, ``uni
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
 import numpy as np
@@ -23,6 +22,7 @@ import pandas as pd
 from bench.analysis import runview
 from bench.analysis.verdict import UNIT_TEXT
 from bench.errors import BenchError, ConfigError, StoreError
+from bench.htmlkit import safe_name
 
 __all__ = ["export_run"]
 
@@ -34,10 +34,6 @@ _TRACE_HEADINGS = {
     "z_m": "Probe height above board (m)", "rotation_deg": "Probe rotation (°)", "probe": "Probe",
     "height_m": "Antenna height (m)", "polarization": "Polarization", "azimuth_deg": "Azimuth (°)",
 }
-
-
-def _file_label(label: str) -> str:
-    return re.sub(r"[^A-Za-z0-9._-]+", "_", str(label)).strip("._") or "step"
 
 
 def export_run(run, out_dir: Path, *, parquet: bool = False) -> list[Path]:
@@ -76,7 +72,7 @@ def _write_all(run, meta: pd.DataFrame, out_dir: Path, parquet: bool) -> list[Pa
     for label, group in meta.groupby("step_label", sort=False):
         table = _spectra(run, label, group)
         spectra.append(table)
-        written.append(_csv(_human_spectra(table), out_dir / f"spectra-{_file_label(label)}.csv"))
+        written.append(_csv(_human_spectra(table), out_dir / f"spectra-{safe_name(label)}.csv"))
     results = run.results()
     if not results.empty:
         written.append(_csv(_human_results(results), out_dir / "results.csv"))

@@ -9,7 +9,6 @@ is carried out by its kind through the executor's narrow measuring interface.
 
 from __future__ import annotations
 
-import hashlib
 import logging
 import shutil
 import sys
@@ -21,6 +20,7 @@ from bench.errors import BenchError, ConfigError, OperatorStop, RunInterrupted
 from bench.executor import Executor, RetryPolicy
 from bench.instruments import connect_station, needs_of
 from bench.preflight import resolve_limit
+from bench.provenance import digest
 from bench.progress import Progress
 from bench.steps import kind_of
 from bench.store import RunStore, create_run, open_run
@@ -28,10 +28,6 @@ from bench.store import RunStore, create_run, open_run
 __all__ = ["execute_new_run", "resume_run", "resumable_files", "build_manifest"]
 
 log = logging.getLogger("bench.run")
-
-
-def _sha256(path: Path) -> str:
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
 def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, str]]]:
@@ -73,7 +69,7 @@ def build_manifest(session, *, simulated: bool) -> tuple[dict, list[tuple[Path, 
 
 
 def _file_entry(path: Path) -> dict:
-    return {"path": str(Path(path).resolve()), "sha256": _sha256(path),
+    return {"path": str(Path(path).resolve()), "sha256": digest(path),
             "text": Path(path).read_text(encoding="utf-8")}
 
 
@@ -266,11 +262,11 @@ def resumable_files(folder: Path, *, bench_path: Path | None) -> tuple[Path, Pat
     if not isinstance(manifest.get("sequence"), dict) or "path" not in manifest["sequence"]:
         raise ConfigError(f"{folder}: the manifest names no sequence file: this folder cannot be resumed")
     seq_path = Path(manifest["sequence"]["path"])
-    if not seq_path.is_file() or _sha256(seq_path) != manifest["sequence"]["sha256"]:
+    if not seq_path.is_file() or digest(seq_path) != manifest["sequence"]["sha256"]:
         raise ConfigError(f"{seq_path}: the sequence file changed or is missing since the run started; "
                           "resume needs the same sequence")
     bench_file = bench_path or Path(manifest["bench"]["path"])
-    if bench_path is None and (not bench_file.is_file() or _sha256(bench_file) != manifest["bench"]["sha256"]):
+    if bench_path is None and (not bench_file.is_file() or digest(bench_file) != manifest["bench"]["sha256"]):
         raise ConfigError(f"{bench_file}: the bench file changed or is missing since the run started; "
                           "pass --bench to resume on purpose with another one")
     return seq_path, bench_file, manifest

@@ -138,6 +138,11 @@ def write_manifest_atomic(path: Path, data: dict) -> None:
         raise StoreError(f"{path}: cannot write the manifest: {exc.strerror or exc}") from None
 
 
+#: Columns of a result row as stored (the table's own id aside).
+_RESULT_COLUMNS = ("step_label", "freq_hz", "level", "unit", "detector", "limit_level", "margin_db",
+                   "status", "polarization", "height_m", "azimuth_deg", "chain", "note")
+
+
 def _drop_none(value):
     """tomli-w cannot write None: omit such keys (pitfalls: TOML)."""
     if isinstance(value, dict):
@@ -249,8 +254,7 @@ class RunStore:
         return cur.rowcount
 
     def add_results(self, rows: list[dict]) -> None:
-        cols = ("step_label", "freq_hz", "level", "unit", "detector", "limit_level", "margin_db",
-                "status", "polarization", "height_m", "azimuth_deg", "chain", "note")
+        cols = _RESULT_COLUMNS
         with self._db:
             self._db.executemany(
                 f"INSERT INTO results ({', '.join(cols)}) VALUES ({', '.join('?' * len(cols))})",
@@ -260,8 +264,7 @@ class RunStore:
     def replace_results(self, step_label: str, rows: list[dict], *, done_action: int | None = None) -> None:
         """Replace a step's results; with ``done_action``, mark that action done in the same
         transaction, so a killed run has either both or neither."""
-        cols = ("step_label", "freq_hz", "level", "unit", "detector", "limit_level", "margin_db",
-                "status", "polarization", "height_m", "azimuth_deg", "chain", "note")
+        cols = _RESULT_COLUMNS
         try:
             with self._db:
                 self._db.execute("DELETE FROM results WHERE step_label = ?", (step_label,))

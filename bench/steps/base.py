@@ -33,7 +33,8 @@ from bench.planning import (
     merge_pose,
 )
 
-__all__ = ["StepKind", "Measurer", "StepContext", "PreflightContext", "antenna_chain", "where"]
+__all__ = ["StepKind", "Measurer", "StepContext", "PreflightContext", "antenna_chain", "optional_float",
+           "where"]
 
 
 class Measurer(Protocol):
@@ -81,6 +82,11 @@ class PreflightContext(Protocol):
 
     def step_span_hz(self, label: str) -> tuple[float, float] | None:
         """Lowest start and highest stop of a step's planned segments, or None."""
+
+
+def optional_float(value) -> float | None:
+    """A stored number as float, or None where it is missing (None or NaN)."""
+    return None if value is None or (isinstance(value, float) and value != value) else float(value)
 
 
 def where(index: int, step) -> str:

@@ -41,7 +41,7 @@ from bench.planning import (
     StepSummary,
     sweep_time_s,
 )
-from bench.steps.base import StepKind, where
+from bench.steps.base import StepKind, optional_float, where
 from bench.tomlsource import cross_check_error
 from bench.steps.fields import (
     Detector,
@@ -65,42 +65,6 @@ LIMIT_DETECTOR = {"peak": "peak", "quasi-peak": "quasi-peak", "cispr-average": "
                   "average": "average", "rms": "average"}
 
 
-class AngleSearch(StrictModel):
-    """Search around a suspect's azimuth: +- ``half_width_deg`` by ``step_deg``."""
-
-    half_width_deg: NonNegativeAngle = Field(alias="half_width")
-    step_deg: PositiveAngle = Field(alias="step")
-
-    @pydantic.model_validator(mode="after")
-    def _bounded(self) -> "AngleSearch":
-        problems = _search_size_problem(self.half_width_deg, self.step_deg, lambda v: f"{v:g} deg")
-        if problems:
-            raise cross_check_error(problems)
-        return self
-
-    def offsets(self) -> tuple[float, ...]:
-        """Offsets from the centre, deg, symmetric, including 0."""
-        return _offsets(self.half_width_deg, self.step_deg)
-
-
-class HeightSearch(StrictModel):
-    """Search around a suspect's antenna height: +- ``half_width_m`` by ``step_m``."""
-
-    half_width_m: NonNegativeLength = Field(alias="half_width")
-    step_m: PositiveLength = Field(alias="step")
-
-    @pydantic.model_validator(mode="after")
-    def _bounded(self) -> "HeightSearch":
-        problems = _search_size_problem(self.half_width_m, self.step_m, lambda v: f"{v:g} m")
-        if problems:
-            raise cross_check_error(problems)
-        return self
-
-    def offsets(self) -> tuple[float, ...]:
-        """Offsets from the centre, m, symmetric, including 0."""
-        return _offsets(self.half_width_m, self.step_m)
-
-
 #: Most search positions either side of a suspect: a typo ("1e300 deg") must not plan millions.
 MAX_SEARCH_OFFSETS = 1000
 
@@ -115,6 +79,46 @@ def _search_size_problem(half_width: float, step: float, show) -> list:
 def _offsets(half_width: float, step: float) -> tuple[float, ...]:
     count = int(math.floor(half_width / step + 1e-9))
     return tuple(float(k * step) for k in range(-count, count + 1))
+
+
+class _Search(StrictModel):
+    """A search around a suspect: +- a half width by a step, both ends and the centre kept."""
+
+    def _span(self) -> tuple[float, float, str]:
+        raise NotImplementedError
+
+    @pydantic.model_validator(mode="after")
+    def _bounded(self) -> "_Search":
+        half, step, unit = self._span()
+        problems = _search_size_problem(half, step, lambda v: f"{v:g} {unit}")
+        if problems:
+            raise cross_check_error(problems)
+        return self
+
+    def offsets(self) -> tuple[float, ...]:
+        """Offsets from the centre (deg or m), symmetric, including 0."""
+        half, step, _ = self._span()
+        return _offsets(half, step)
+
+
+class AngleSearch(_Search):
+    """Search around a suspect's azimuth: +- ``half_width_deg`` by ``step_deg``."""
+
+    half_width_deg: NonNegativeAngle = Field(alias="half_width")
+    step_deg: PositiveAngle = Field(alias="step")
+
+    def _span(self) -> tuple[float, float, str]:
+        return self.half_width_deg, self.step_deg, "deg"
+
+
+class HeightSearch(_Search):
+    """Search around a suspect's antenna height: +- ``half_width_m`` by ``step_m``."""
+
+    half_width_m: NonNegativeLength = Field(alias="half_width")
+    step_m: PositiveLength = Field(alias="step")
+
+    def _span(self) -> tuple[float, float, str]:
+        return self.half_width_m, self.step_m, "m"
 
 
 class FinalStep(StrictModel):
@@ -130,22 +134,6 @@ class FinalStep(StrictModel):
     height_search: Optional[HeightSearch] = None
 
 
-
-
-#: Most search positions either side of a suspect: a typo ("1e300 deg") must not plan millions.
-MAX_SEARCH_OFFSETS = 1000
-
-
-def _search_size_problem(half_width: float, step: float, show) -> list:
-    if half_width / step > MAX_SEARCH_OFFSETS:
-        return [(("step",), f"expected at most {MAX_SEARCH_OFFSETS} positions either side, found "
-                            f"{show(half_width)} by {show(step)} (is the unit right?)")]
-    return []
-
-
-def _offsets(half_width: float, step: float) -> tuple[float, ...]:
-    count = int(math.floor(half_width / step + 1e-9))
-    return tuple(float(k * step) for k in range(-count, count + 1))
 
 
 # --------------------------------------------------------------------------- the kind
@@ -223,8 +211,8 @@ class FinalKind(StepKind):
         for r in rows.itertuples():
             raw = float(r.level) if ctx.chain is None else float(
                 r.level - (ctx.chain.correct(np.array([r.freq_hz]), np.array([0.0]))[0]))
-            pose = (_num(r.height_m), r.polarization if isinstance(r.polarization, str) else None,
-                    _num(r.azimuth_deg))
+            pose = (optional_float(r.height_m), r.polarization if isinstance(r.polarization, str) else None,
+                    optional_float(r.azimuth_deg))
             out.append(_final_row(sequence.step(info["label"]), ctx, float(r.freq_hz), r.detector, raw, pose,
                                   margin))
         return out
@@ -260,9 +248,6 @@ def _search_cost(caps, step: FinalStep) -> tuple[int, float]:
 
 # --------------------------------------------------------------------------- measuring
 
-
-def _num(value):
-    return None if value is None or (isinstance(value, float) and np.isnan(value)) else float(value)
 
 
 #: Sweeps of the zoom around a suspect, sharing its dwell: max-hold of many short sweeps catches
@@ -341,8 +326,8 @@ def run_finals(store, measurer, step: FinalStep, prescan_step, sweep, ctx, mast_
     suspects = suspects[suspects["status"].isin(["fail", "marginal"])]
     rows = []
     for _, s in suspects.iterrows():
-        pose = (_num(s["height_m"]), s["polarization"] if isinstance(s["polarization"], str) else None,
-                _num(s["azimuth_deg"]))
+        pose = (optional_float(s["height_m"]), s["polarization"] if isinstance(s["polarization"], str) else None,
+                optional_float(s["azimuth_deg"]))
         rows += _final_rows(measurer, step, sweep, ctx, float(s["freq_hz"]), pose,
                             (mast_limits_m, turntable_limits_deg), points, prescan_step.margin_db)
     return rows

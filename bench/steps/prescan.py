@@ -37,7 +37,7 @@ import pydantic
 from pydantic import Field, StrictStr
 
 from bench.planning import FarFieldPose, PlanState, check_far_pose, far_move_time_s
-from bench.steps.base import StepKind, where
+from bench.steps.base import StepKind, optional_float, where
 from bench.steps.fields import (
     MAX_RANGE_VALUES,
     Angle,
@@ -281,9 +281,6 @@ def stored_context(run, info: dict) -> FarFieldContext:
 # --------------------------------------------------------------------------- analysis
 
 
-def _num(value):
-    return None if value is None or (isinstance(value, float) and np.isnan(value)) else float(value)
-
 
 def _pose_of_max(store, label: str, freq_hz: float) -> dict:
     """Pose (polarization, height, azimuth) of the trace with the highest level at ``freq_hz``."""
@@ -299,8 +296,8 @@ def _pose_of_max(store, label: str, freq_hz: float) -> dict:
             best, best_level = row, level
     if best is None:
         return {}
-    return {"polarization": best["polarization"], "height_m": _num(best["height_m"]),
-            "azimuth_deg": _num(best["azimuth_deg"])}
+    return {"polarization": best["polarization"], "height_m": optional_float(best["height_m"]),
+            "azimuth_deg": optional_float(best["azimuth_deg"])}
 
 
 def _suspects(store, step: PrescanStep, ctx: FarFieldContext, peaks):
